@@ -1,0 +1,24 @@
+"""gradcheck: verify hand-written gradients against independent references, and say what is wrong.
+
+The whole public API is a handful of verbs and the results they return; every
+name below is re-exported from a private module that does one job.
+"""
+
+from ._errors import BackpropMismatch, InputError
+from ._examine import assert_backprop, examine, reference
+from ._report import Finding, LayerResult, ReferenceSummary, Report, TensorResult
+
+__all__ = [
+    "examine",
+    "assert_backprop",
+    "reference",
+    "Report",
+    "Finding",
+    "TensorResult",
+    "LayerResult",
+    "ReferenceSummary",
+    "BackpropMismatch",
+    "InputError",
+]
+
+__version__ = "0.1.0"

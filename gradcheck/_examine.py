@@ -1,0 +1,334 @@
+"""The entry points: ``examine``, ``assert_backprop`` and ``reference``.
+
+Each call runs in stages that hand read-only results along:
+
+1. plan (``_plan``): validate, copy, evaluate the loss once, learn its precision;
+2. compute (here): the references the loss allows (autodiff, complex step,
+   central differences, Richardson);
+3. compare (``_compare``): per-entry relative errors and reference agreement;
+4. diagnose (``_diagnose`` and friends): which mistake, and where it starts;
+5. report (``_report``).
+
+An :class:`InputError` from any stage is re-raised here once, prefixed with the
+entry point's name, so the user sees which call the message belongs to.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import functools
+from typing import Any, Callable, Sequence
+
+import numpy as np
+
+from ._autodiff import Traced, autodiff_estimate, trace
+from ._compare import Judgement, judge
+from ._diagnose import Evidence, merge_findings, tensor_findings
+from ._errors import BackpropMismatch, InputError, input_error
+from ._numerical import EPS32, EPS64, Estimate, central, complex_step, complex_usable, richardson
+from ._plan import Plan, claimed_from, make_plan
+from ._report import Finding, Report, TensorResult, build_layers
+from ._tree import LayerSpec
+
+__all__ = ["examine", "assert_backprop", "reference", "METHODS"]
+
+METHODS = ("autodiff", "complex", "richardson", "central")
+"""Every reference method, most accurate first (the first one computed is the primary)."""
+
+FULL_CHECK_LIMIT = 100_000
+"""Networks up to this many parameters are checked entry by entry unless a budget is given."""
+
+CONFIRM_PER_TENSOR = 32
+"""Failing entries per tensor re-checked with a second method when only one reference was computed."""
+
+
+def _entry_point(name: str) -> Callable:
+    def wrap(fn: Callable) -> Callable:
+        @functools.wraps(fn)
+        def inner(*args, **kwargs):
+            try:
+                return fn(*args, **kwargs)
+            except InputError as exc:
+                raise InputError(f"gradcheck.{name}: {exc}") from exc.__cause__
+        return inner
+    return wrap
+
+
+def _check_methods(methods: Sequence[str] | str | None) -> tuple[str, ...] | None:
+    if methods is None:
+        return None
+    if isinstance(methods, str):
+        methods = (methods,)
+    unknown = [m for m in methods if m not in METHODS]
+    if unknown or not methods:
+        raise input_error("methods", f"names among {list(METHODS)}", repr(list(methods)),
+                          "Pass e.g. methods=('autodiff', 'central').")
+    return tuple(m for m in METHODS if m in methods)
+
+
+def _directional_agreement(plan: Plan, est: Estimate, seed: int) -> bool:
+    """Cross-check a complex-step gradient with central differences along one random direction per tensor.
+
+    A loss can accept complex input yet not be complex-analytic (abs, real casts,
+    comparisons on the imaginary part); then its complex step is quietly wrong.
+    Two real evaluations per tensor expose that.
+    """
+    ev = plan.evaluator()
+    rng = np.random.default_rng(seed)
+    for k, b in enumerate(plan.base):
+        v = rng.standard_normal(b.shape)
+        v /= max(np.linalg.norm(v), 1e-300)
+        h = EPS64 ** (1 / 3) * max(float(np.max(np.abs(b), initial=0.0)), 1.0)
+        num = (ev.along(k, v, h) - ev.along(k, v, -h)) / (2 * h)
+        dot = float(np.sum(est.values[k] * v))
+        if abs(num - dot) > 1e-5 * max(abs(num), abs(dot)) + 1e3 * float(np.max(est.atol[k], initial=0.0)):
+            return False
+    return True
+
+
+def compute_references(plan: Plan, methods: tuple[str, ...] | None, seed: int = 0, executor: Any = None,
+                       progress: bool | None = None) -> tuple[list[Estimate], dict[str, str], int, Traced | None]:
+    """Compute the requested (or default) references; return them primary first.
+
+    The default is autodiff when the loss allows it plus central differences;
+    when autodiff is unavailable, the complex step takes its place as the exact
+    reference where the loss accepts complex parameters (detected by trying).
+    """
+    eps = plan.loss_eps
+    estimates: list[Estimate] = []
+    unavailable: dict[str, str] = {}
+    evaluations = 0
+    wanted = methods or ("autodiff", "complex", "central")
+    traced: Traced | None = None
+    if "autodiff" in wanted:
+        got = trace(plan.loss, plan.structure, plan.base, plan.data, plan.kwargs)
+        if isinstance(got, str):
+            unavailable["autodiff"] = got
+        else:
+            est = autodiff_estimate(got, plan.base, plan.f0)
+            evaluations += 1
+            if isinstance(est, str):
+                unavailable["autodiff"] = est
+            else:
+                traced = got
+                if eps > EPS64:
+                    est = dataclasses.replace(est, rtol=1e-5, atol=tuple(a * eps / EPS64 for a in est.atol))
+                estimates.append(est)
+    if "complex" in wanted and not (methods is None and estimates):
+        cev = plan.evaluator(np.complex128)
+        reason = complex_usable(cev, plan.f0)
+        if reason is None and eps > EPS64:
+            reason = "the loss computes in float32 inside, below the complex step's accuracy"
+        if reason is None:
+            est = complex_step(cev, plan.f0)
+            if methods is None and not _directional_agreement(plan, est, seed):
+                reason = "the loss accepts complex numbers but is not complex-analytic (abs, comparisons or casts)"
+                evaluations += 2 * len(plan.base)
+            else:
+                estimates.append(est)
+                evaluations += 2 * len(plan.base) if methods is None else 0
+        evaluations += cev.count
+        if reason is not None:
+            unavailable["complex"] = reason
+    ev = plan.evaluator()
+    if "richardson" in wanted:
+        estimates.append(richardson(ev, plan.f0, eps=eps))
+    if "central" in wanted:
+        estimates.append(central(ev, plan.f0, eps=eps))
+    evaluations += ev.count
+    if not estimates:
+        raise input_error("methods", "at least one reference method this loss allows",
+                          "; ".join(f"{m}: {why}" for m, why in unavailable.items()),
+                          "Add 'central' to methods (it works for any loss).")
+    return estimates, unavailable, evaluations, traced
+
+
+def _confirm(plan: Plan, judgement: Judgement, estimates: list[Estimate]) -> tuple[list[Estimate], int]:
+    """With a single reference, re-check its failing entries with Richardson extrapolation.
+
+    A failing entry where a second, differently stepped method disagrees with
+    the first is a kink or noise, not the user's mistake; the disagreement shows
+    up as an unreliable entry when the judgement is made again.
+    """
+    wanted = []
+    for t, err in zip(judgement.tensors, judgement.errors):
+        flat = np.nan_to_num(err.reshape(-1), nan=-1.0)
+        failing = np.flatnonzero(flat > t.tolerance)
+        wanted.append(failing[np.argsort(-flat[failing])][:CONFIRM_PER_TENSOR])
+    if not any(len(w) for w in wanted):
+        return estimates, 0
+    ev = plan.evaluator()
+    second = richardson(ev, plan.f0, wanted, eps=plan.loss_eps)
+    return estimates + [second], ev.count
+
+
+def _layer_order(plan: Plan, traced: Traced | None) -> tuple[str, ...]:
+    if traced is None:
+        return plan.structure.layer_order
+    seen: dict[str, None] = {}
+    for i in traced.order:
+        seen.setdefault(plan.structure.tensors[i].layer, None)
+    return tuple(seen)
+
+
+def _batch_sizes(data: tuple) -> tuple[int, ...]:
+    return tuple(int(np.shape(d)[0]) for d in data if isinstance(d, np.ndarray) and np.ndim(d) >= 1)
+
+
+def _nondeterministic(plan: Plan, title: str) -> Report:
+    from ._report import ReferenceSummary
+
+    finding = Finding("nondeterministic-loss", None, "loss",
+                      f"the loss gave {plan.f0!r} and then {plan.second_value!r} for the same params; fix the random "
+                      "seed (or pass the dropout mask as data) so that every evaluation sees the same randomness")
+    tensors = tuple(TensorResult(t.path, t.layer, t.shape, float("nan"), (), 0, float("nan"), float("nan"), False,
+                                 float("nan"), 0, t.size) for t in plan.structure.tensors)
+    return Report(False, tensors, build_layers(tensors, plan.structure.layer_order), (finding,), plan.evaluations,
+                  ReferenceSummary("none", (), {}, {"all": "the loss is not deterministic"}), title=title)
+
+
+@_entry_point("examine")
+def examine(loss: Callable, params: Any, *data: Any, grads: Any, layers: LayerSpec = None,
+            methods: Sequence[str] | str | None = None, tolerance: float | None = None, seed: int = 0,
+            title: str = "gradient check", budget: int | None = None, executor: Any = None,
+            progress: bool | None = None) -> Report:
+    """Check claimed gradients against independent references and diagnose what is wrong.
+
+    Args:
+        loss: ``loss(params, *data) -> scalar``.
+        params: a pytree (dicts, lists, tuples) of float arrays or floats.
+        *data: the inputs the loss takes after params (float data is promoted to float64).
+        grads: the claimed dE/dparams, a pytree like params, or a callable ``grads(params, *data)``.
+        layers: a mapping path -> layer name, or a callable, overriding the default grouping.
+        methods: reference methods to use (default: autodiff when available plus central differences).
+        tolerance: relative tolerance for every tensor (default: by the claimed dtype and the reference).
+        seed: seed for the random directions and perturbations the check draws.
+        title: the first words of the text report.
+        budget: the most loss evaluations to spend; networks larger than
+            ``FULL_CHECK_LIMIT`` parameters get a default budget (see ``_budget``).
+        executor: a ``concurrent.futures.Executor`` to farm loss evaluations out to.
+        progress: show a progress bar (default: only on a terminal).
+
+    Returns:
+        A :class:`gradcheck.Report`.
+
+    Example:
+        >>> import numpy as np, gradcheck
+        >>> def loss(p, x):
+        ...     return float(np.sum(np.tanh(x @ p["W"]) ** 2))
+        >>> x, W = np.array([[0.3, -0.2]]), np.array([[0.5], [0.1]])
+        >>> def backward(p, x):
+        ...     a = np.tanh(x @ p["W"])
+        ...     return {"W": x.T @ (2 * a * (1 - a ** 2))}
+        >>> gradcheck.examine(loss, {"W": W}, x, grads=backward).ok
+        True
+    """
+    chosen = _check_methods(methods)
+    plan = make_plan(loss, params, data, layers, seed=seed)
+    claimed, dtypes, first_raw = claimed_from(plan, grads)
+    repeat = claimed_from(plan, grads)[0] if callable(grads) else None
+    if not plan.deterministic:
+        return _nondeterministic(plan, title)
+    notes: list[str] = []
+    budgeted = budget is not None or plan.structure.size > FULL_CHECK_LIMIT
+    if budgeted:
+        from ._budget import check_within_budget
+
+        traced_or_reason = trace(plan.loss, plan.structure, plan.base, plan.data, plan.kwargs)
+        traced = None if isinstance(traced_or_reason, str) else traced_or_reason
+        judgement, evaluations, budget_notes = check_within_budget(
+            plan, claimed, dtypes, traced, budget=budget, executor=executor, progress=progress, seed=seed,
+            tolerance=tolerance)
+        notes.extend(budget_notes)
+        estimates = [judgement.primary]
+    else:
+        estimates, unavailable, evaluations, traced = compute_references(plan, chosen, seed, executor, progress)
+        judgement = judge(plan.structure, claimed, dtypes, estimates, unavailable, tolerance)
+    if len(estimates) == 1 and not budgeted and not all(t.ok for t in judgement.tensors):
+        estimates, extra = _confirm(plan, judgement, estimates)
+        evaluations += extra
+        judgement = judge(plan.structure, claimed, dtypes, estimates, unavailable, tolerance)
+    order = _layer_order(plan, traced)
+    evidence = Evidence(plan.structure, tuple(claimed), plan.base, judgement, _batch_sizes(plan.data), order)
+    findings = []
+    for k, t in enumerate(judgement.tensors):
+        if t.ok:
+            continue
+        found = tensor_findings(evidence, k)
+        if found:
+            findings.extend((f, m, 2) for f, m in found[:3])
+        else:
+            findings.append((Finding("unexplained", t.layer, t.path,
+                                     f"the claimed gradient differs from the reference by up to {t.error:.3g} "
+                                     f"(relative) at entry {t.worst_index}, with no simple pattern; check this "
+                                     "tensor's formula in the backward pass", None), t.error, 3))
+    if repeat is not None:
+        findings.extend(_repeat_findings(plan, claimed, repeat, judgement))
+    if plan.loss_eps > EPS64:
+        notes.append("the loss computes in float32 internally (it does not see float64 changes of its params), "
+                     f"so the references are float32-accurate and tolerances were widened to "
+                     f"{min(t.tolerance for t in judgement.tensors):.1e}")
+    ok = all(t.ok for t in judgement.tensors) and not findings
+    ranked = merge_findings(findings, order)
+    tensors = judgement.tensors
+    return Report(ok, tensors, build_layers(tensors, order), ranked if not ok else (),
+                  plan.evaluations + evaluations, judgement.summary,
+                  notes=tuple(notes), title=title)
+
+
+def _repeat_findings(plan: Plan, first: list[np.ndarray], second: list[np.ndarray],
+                     judgement: Judgement) -> list[tuple[Finding, float, int]]:
+    """Compare two calls of the ``grads`` callable on the same input: buffers that are never cleared show up here."""
+    out = []
+    for k, t in enumerate(plan.structure.tensors):
+        a, b = first[k], second[k]
+        if np.array_equal(a, b, equal_nan=True):
+            continue
+        if np.allclose(b, 2 * a, rtol=1e-9, atol=0) and np.any(a != 0):
+            detail = ("a second call of the grads callable returned twice the first: gradient buffers are "
+                      "accumulated (+=) and never reset; zero them at the start of every backward pass")
+            out.append((Finding("accumulating", t.layer, t.path, detail, 2.0), 0.0, 0))
+        else:
+            detail = ("two calls of the grads callable on the same input returned different values; it keeps "
+                      "state between calls or uses unseeded randomness")
+            out.append((Finding("accumulating", t.layer, t.path, detail, None), 1.0, 1))
+    return out
+
+
+@_entry_point("assert_backprop")
+def assert_backprop(loss: Callable, params: Any, *data: Any, grads: Any, **options: Any) -> Report:
+    """Like :func:`examine`, but raise :class:`gradcheck.BackpropMismatch` (an AssertionError) when wrong.
+
+    The exception's message is the full text report; its ``report`` attribute is the Report.
+    """
+    report = examine.__wrapped__(loss, params, *data, grads=grads, **options)
+    if not report.ok:
+        raise BackpropMismatch(report)
+    return report
+
+
+@_entry_point("reference")
+def reference(loss: Callable, params: Any, *data: Any, method: str = "central", seed: int = 0) -> Any:
+    """The reference gradient of ``loss`` at ``params`` by one method, as a pytree shaped like params.
+
+    Args:
+        method: ``central``, ``richardson``, ``complex`` or ``autodiff``.
+
+    Example:
+        >>> import numpy as np, gradcheck
+        >>> g = gradcheck.reference(lambda p: float(np.sum(p["w"] ** 2)), {"w": np.array([1.0, -3.0])})
+        >>> np.round(g["w"], 8)
+        array([ 2., -6.])
+    """
+    chosen = _check_methods(method)
+    if chosen is None or len(chosen) != 1:
+        raise input_error("method", f"one name among {list(METHODS)}", repr(method), "Pass e.g. method='central'.")
+    plan = make_plan(loss, params, data, seed=seed)
+    if not plan.deterministic:
+        raise input_error("loss", "the same value for the same params", f"{plan.f0!r}, then {plan.second_value!r}",
+                          "Fix the random seed inside the loss.")
+    estimates, unavailable, _, _ = compute_references(plan, chosen, seed)
+    if unavailable.get(chosen[0]):
+        raise input_error("method", f"a method this loss allows", f"{chosen[0]} ({unavailable[chosen[0]]})",
+                          "Use method='central', which works for any loss.")
+    return plan.structure.rebuild(list(estimates[0].values))
