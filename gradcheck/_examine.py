@@ -25,6 +25,7 @@ from ._autodiff import Traced, autodiff_estimate, trace
 from ._compare import Judgement, judge
 from ._diagnose import Evidence, merge_findings, tensor_findings
 from ._errors import BackpropMismatch, InputError, input_error
+from ._listeners import announce
 from ._numerical import EPS32, EPS64, Estimate, central, complex_step, complex_usable, richardson
 from ._plan import Plan, claimed_from, make_plan
 from ._report import Finding, Report, TensorResult, build_layers
@@ -228,7 +229,7 @@ def examine(loss: Callable, params: Any, *data: Any, grads: Any, layers: LayerSp
     claimed, dtypes, first_raw = claimed_from(plan, grads)
     repeat = claimed_from(plan, grads)[0] if callable(grads) else None
     if not plan.deterministic:
-        return _nondeterministic(plan, title)
+        return announce(_nondeterministic(plan, title))
     notes: list[str] = []
     budgeted = budget is not None or plan.structure.size > FULL_CHECK_LIMIT
     if budgeted:
@@ -271,9 +272,9 @@ def examine(loss: Callable, params: Any, *data: Any, grads: Any, layers: LayerSp
     ok = all(t.ok for t in judgement.tensors) and not findings
     ranked = merge_findings(findings, order)
     tensors = judgement.tensors
-    return Report(ok, tensors, build_layers(tensors, order), ranked if not ok else (),
+    return announce(Report(ok, tensors, build_layers(tensors, order), ranked if not ok else (),
                   plan.evaluations + evaluations, judgement.summary,
-                  notes=tuple(notes), title=title)
+                  notes=tuple(notes), title=title))
 
 
 def _repeat_findings(plan: Plan, first: list[np.ndarray], second: list[np.ndarray],

@@ -64,7 +64,7 @@ def copy_data(data: Sequence[Any], promote: bool = True) -> tuple:
     Integer data (labels, indices) keep their dtype; objects that are not arrays
     are passed through untouched.
     """
-    def promote(leaf: Any) -> Any:
+    def copy_leaf(leaf: Any) -> Any:
         if isinstance(leaf, float):
             return leaf
         if isinstance(leaf, (np.ndarray, np.generic)) or (hasattr(leaf, "__array__") and hasattr(leaf, "dtype")):
@@ -78,7 +78,7 @@ def copy_data(data: Sequence[Any], promote: bool = True) -> tuple:
     for item in data:
         found: list = []
         recipe = _walk(item, (), found)
-        out.append(_rebuild(recipe, [promote(v) for _, v in found]))
+        out.append(_rebuild(recipe, [copy_leaf(v) for _, v in found]))
     return tuple(out)
 
 
@@ -160,7 +160,15 @@ def claimed_from(plan: Plan, grads: Any, what: str = "grads") -> tuple[list[np.n
             raise input_error(what, f"a callable {what}(params, *data) that returns the claimed values",
                               f"{type(exc).__name__}: {exc}", "Fix the error shown above in the backward pass.") from exc
     arrays = flatten_like(plan.structure, raw, what)
-    dtypes = [a.dtype if a.dtype.kind == "f" else np.dtype(np.float64) for a in arrays]
+    # The precision the user's backward really had is the lowest among the claimed
+    # array, its parameter and the float data: a float32 product upcast by a float64
+    # mask still carries float32 rounding, and its tolerance must say so.
+    data_sizes = [a.dtype.itemsize for a in _float_leaves(copy_data(plan.user_data, promote=False))
+                  if a.dtype.kind == "f"]
+    dtypes = []
+    for a, t in zip(arrays, plan.structure.tensors):
+        size = min([a.dtype.itemsize if a.dtype.kind == "f" else 8, t.dtype.itemsize] + data_sizes)
+        dtypes.append(np.dtype(np.float32) if size <= 4 else np.dtype(np.float64))
     for t, a in zip(plan.structure.tensors, arrays):
         if a.dtype.kind not in "fiu" or a.dtype == bool:
             raise input_error(f"{what} {t.path}", "real numbers", f"dtype {a.dtype}",

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Any, Mapping
+from typing import Any, Mapping, Sequence
 
 import numpy as np
 
@@ -208,6 +208,24 @@ class Report:
                 "tensors": [t.to_dict() for t in self.tensors],
                 "deltas": [t.to_dict() for t in self.deltas],
                 "notes": list(self.notes), "rates": {k: _json_float(v) for k, v in self.rates.items()}}
+
+    def to_html(self) -> str:
+        """A self-contained HTML rendering (verdict, first finding, layer table, error heat maps)."""
+        from ._html import render_html
+
+        return render_html(self)
+
+    def _repr_html_(self) -> str:
+        return self.to_html()
+
+    def plot(self, tensors: Sequence[str] | None = None):
+        """Draw heat maps of the per-entry relative error of each weight tensor (needs matplotlib).
+
+        Returns the matplotlib Figure.
+        """
+        from ._html import plot_errors
+
+        return plot_errors(self, tensors)
 
     def verdict(self) -> str:
         """One line: the verdict and, when wrong, the first finding as a sentence."""

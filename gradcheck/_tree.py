@@ -187,8 +187,6 @@ def flatten(tree: Any, layers: LayerSpec = None, what: str = "params") -> tuple[
         if not (isinstance(leaf, (float, np.ndarray, np.generic)) or hasattr(leaf, "__array__")):
             raise input_error(f"{what} {path}", "a float array or a Python float", describe(leaf),
                               "Use numpy arrays (np.asarray(value, dtype=float)) as leaves.")
-        if isinstance(leaf, bool) or isinstance(leaf, int):
-            check_float_dtype(f"{what} {path}", np.asarray(leaf))
         arr = np.asarray(leaf)
         check_float_dtype(f"{what} {path}", arr)
         tensors.append(Tensor(path, keys, layer, tuple(arr.shape), arr.dtype, isinstance(leaf, float)))
