@@ -189,7 +189,8 @@ def _nondeterministic(plan: Plan, title: str) -> Report:
 
 
 @_entry_point("examine")
-def examine(loss: Callable, params: Any, *data: Any, grads: Any, layers: LayerSpec = None,
+def examine(loss: Callable, params: Any, *data: Any, grads: Any, deltas: Any = None, step: Callable | None = None,
+            layers: LayerSpec = None,
             methods: Sequence[str] | str | None = None, tolerance: float | None = None, seed: int = 0,
             title: str = "gradient check", budget: int | None = None, executor: Any = None,
             progress: bool | None = None) -> Report:
@@ -200,6 +201,10 @@ def examine(loss: Callable, params: Any, *data: Any, grads: Any, layers: LayerSp
         params: a pytree (dicts, lists, tuples) of float arrays or floats.
         *data: the inputs the loss takes after params (float data is promoted to float64).
         grads: the claimed dE/dparams, a pytree like params, or a callable ``grads(params, *data)``.
+        deltas: claimed dE/d(probed value), a dict probe name -> array or a callable like ``grads``;
+            the loss must take a keyword ``probe`` (see ``_probes``).
+        step: the user's update ``step(params, grads) -> new_params``; its effective learning rate
+            is inferred per tensor and an ascent step is reported.
         layers: a mapping path -> layer name, or a callable, overriding the default grouping.
         methods: reference methods to use (default: autodiff when available plus central differences).
         tolerance: relative tolerance for every tensor (default: by the claimed dtype and the reference).
@@ -265,16 +270,32 @@ def examine(loss: Callable, params: Any, *data: Any, grads: Any, layers: LayerSp
                                      "tensor's formula in the backward pass", None), t.error, 3))
     if repeat is not None:
         findings.extend(_repeat_findings(plan, claimed, repeat, judgement))
+    delta_rows: tuple[TensorResult, ...] = ()
+    if deltas is not None:
+        from ._probes import check_deltas
+
+        checked_deltas = check_deltas(plan, deltas, tolerance, lambda name: name.split(".")[0])
+        delta_rows = checked_deltas.rows
+        findings.extend(checked_deltas.findings)
+        evaluations += checked_deltas.evaluations
+    rates: dict[str, float] = {}
+    if step is not None:
+        from ._step import check_step
+
+        checked_step = check_step(plan, step, [np.nan_to_num(v) for v in judgement.primary.values])
+        rates = checked_step.rates
+        findings.extend(checked_step.findings)
+        evaluations += checked_step.evaluations
     if plan.loss_eps > EPS64:
         notes.append("the loss computes in float32 internally (it does not see float64 changes of its params), "
                      f"so the references are float32-accurate and tolerances were widened to "
                      f"{min(t.tolerance for t in judgement.tensors):.1e}")
-    ok = all(t.ok for t in judgement.tensors) and not findings
+    ok = all(t.ok for t in judgement.tensors + delta_rows) and not findings
     ranked = merge_findings(findings, order)
     tensors = judgement.tensors
     return announce(Report(ok, tensors, build_layers(tensors, order), ranked if not ok else (),
                   plan.evaluations + evaluations, judgement.summary,
-                  notes=tuple(notes), title=title))
+                  deltas=delta_rows, notes=tuple(notes), title=title, rates=rates))
 
 
 def _repeat_findings(plan: Plan, first: list[np.ndarray], second: list[np.ndarray],
