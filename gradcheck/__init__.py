@@ -4,6 +4,8 @@ The whole public API is a handful of verbs and the results they return; every
 name below is re-exported from a private module that does one job.
 """
 
+from ._case import Case, load_case, read_description, save_case
+from ._casenet import LayerDescription, LayerProbes, NetworkDescription, NetworkLoss, describe_network
 from ._errors import BackpropMismatch, InputError
 from ._examine import assert_backprop, examine, reference
 from ._report import Finding, LayerResult, ReferenceSummary, Report, TensorResult
@@ -19,6 +21,15 @@ __all__ = [
     "ReferenceSummary",
     "BackpropMismatch",
     "InputError",
+    "save_case",
+    "load_case",
+    "read_description",
+    "describe_network",
+    "Case",
+    "NetworkDescription",
+    "LayerDescription",
+    "LayerProbes",
+    "NetworkLoss",
 ]
 
 __version__ = "0.1.0"
