@@ -344,7 +344,7 @@ class NetworkLoss:
         >>> f = NetworkLoss(net)
         >>> float(f({"out": {"W": np.array([[1.0], [2.0]]), "b": np.array([0.5])}},
         ...         np.array([[1.0, 1.0]]), np.array([[1.5]])))
-        4.5
+        2.0
     """
 
     description: NetworkDescription
