@@ -268,6 +268,12 @@ def examine(loss: Callable, params: Any, *data: Any, grads: Any, deltas: Any = N
                                      f"the claimed gradient differs from the reference by up to {t.error:.3g} "
                                      f"(relative) at entry {t.worst_index}, with no simple pattern; check this "
                                      "tensor's formula in the backward pass", None), t.error, 3))
+    for t in judgement.tensors:
+        if t.checked and t.unreliable == t.checked:
+            findings.append((Finding("unreliable-reference", t.layer, t.path,
+                                     f"the references disagree with each other at every entry of {t.path} (a kink, "
+                                     "a non-smooth or noisy loss), so its claimed values could not be judged; the "
+                                     "user's value is not blamed: check it at another point", None), 1.0, 3))
     if repeat is not None:
         findings.extend(_repeat_findings(plan, claimed, repeat, judgement))
     delta_rows: tuple[TensorResult, ...] = ()
