@@ -26,7 +26,7 @@ from ._compare import Judgement, judge
 from ._diagnose import Evidence, merge_findings, tensor_findings
 from ._errors import BackpropMismatch, InputError, input_error
 from ._listeners import announce
-from ._numerical import EPS32, EPS64, Estimate, central, complex_step, complex_usable, richardson
+from ._numerical import COMPLEX_STEP, EPS64, Estimate, central, complex_step, complex_usable, richardson
 from ._plan import Plan, claimed_from, make_plan
 from ._report import Finding, Report, TensorResult, build_layers
 from ._tree import LayerSpec
@@ -67,39 +67,49 @@ def _check_methods(methods: Sequence[str] | str | None) -> tuple[str, ...] | Non
     return tuple(m for m in METHODS if m in methods)
 
 
-def _directional_agreement(plan: Plan, est: Estimate, seed: int) -> bool:
-    """Cross-check a complex-step gradient with central differences along one random direction per tensor.
+def _complex_is_analytic(plan: Plan, cev: Any, seed: int) -> tuple[bool, int]:
+    """Cross-check the complex step with central differences along one random direction per tensor.
 
     A loss can accept complex input yet not be complex-analytic (abs, real casts,
     comparisons on the imaginary part); then its complex step is quietly wrong.
-    Two real evaluations per tensor expose that.
+    Im f(x + i h v) / h is the directional derivative along v for an analytic
+    loss, so one complex and two real evaluations per tensor expose that.
+    Returns the verdict and the evaluations spent.
     """
     ev = plan.evaluator()
     rng = np.random.default_rng(seed)
+    spent = 0
     for k, b in enumerate(plan.base):
         v = rng.standard_normal(b.shape)
-        v /= max(np.linalg.norm(v), 1e-300)
+        v /= max(float(np.linalg.norm(v)), 1e-300)
         h = EPS64 ** (1 / 3) * max(float(np.max(np.abs(b), initial=0.0)), 1.0)
         num = (ev.along(k, v, h) - ev.along(k, v, -h)) / (2 * h)
-        dot = float(np.sum(est.values[k] * v))
-        if abs(num - dot) > 1e-5 * max(abs(num), abs(dot)) + 1e3 * float(np.max(est.atol[k], initial=0.0)):
-            return False
-    return True
+        cev.work[k][...] = cev.base[k] + 1j * COMPLEX_STEP * v.reshape(b.shape)
+        try:
+            exact = complex(cev()).imag / COMPLEX_STEP
+        finally:
+            cev.reset(k)
+        spent += 3
+        if abs(num - exact) > 1e-5 * max(abs(num), abs(exact)) + 1e4 * EPS64 * max(abs(plan.f0), 1e-300) / h:
+            return False, spent
+    return True, spent
 
 
 def compute_references(plan: Plan, methods: tuple[str, ...] | None, seed: int = 0, executor: Any = None,
                        progress: bool | None = None) -> tuple[list[Estimate], dict[str, str], int, Traced | None]:
     """Compute the requested (or default) references; return them primary first.
 
-    The default is autodiff when the loss allows it plus central differences;
-    when autodiff is unavailable, the complex step takes its place as the exact
-    reference where the loss accepts complex parameters (detected by trying).
+    The default is autodiff when the loss allows it plus central differences.
+    The complex step is exact too, but a complex evaluation of a numpy loss costs
+    up to twenty real ones (complex transcendental functions), so by default it
+    is spent only where it decides something: on the entries that fail against a
+    lone central-difference reference (see :func:`_confirm`).
     """
     eps = plan.loss_eps
     estimates: list[Estimate] = []
     unavailable: dict[str, str] = {}
     evaluations = 0
-    wanted = methods or ("autodiff", "complex", "central")
+    wanted = methods or ("autodiff", "central")
     traced: Traced | None = None
     if "autodiff" in wanted:
         got = trace(plan.loss, plan.structure, plan.base, plan.data, plan.kwargs)
@@ -115,22 +125,16 @@ def compute_references(plan: Plan, methods: tuple[str, ...] | None, seed: int = 
                 if eps > EPS64:
                     est = dataclasses.replace(est, rtol=1e-5, atol=tuple(a * eps / EPS64 for a in est.atol))
                 estimates.append(est)
-    if "complex" in wanted and not (methods is None and estimates):
+    if "complex" in wanted:
         cev = plan.evaluator(np.complex128)
         reason = complex_usable(cev, plan.f0)
         if reason is None and eps > EPS64:
             reason = "the loss computes in float32 inside, below the complex step's accuracy"
         if reason is None:
-            est = complex_step(cev, plan.f0)
-            if methods is None and not _directional_agreement(plan, est, seed):
-                reason = "the loss accepts complex numbers but is not complex-analytic (abs, comparisons or casts)"
-                evaluations += 2 * len(plan.base)
-            else:
-                estimates.append(est)
-                evaluations += 2 * len(plan.base) if methods is None else 0
-        evaluations += cev.count
-        if reason is not None:
+            estimates.append(complex_step(cev, plan.f0))
+        else:
             unavailable["complex"] = reason
+        evaluations += cev.count
     ev = plan.evaluator()
     if "richardson" in wanted:
         estimates.append(richardson(ev, plan.f0, eps=eps))
@@ -144,12 +148,19 @@ def compute_references(plan: Plan, methods: tuple[str, ...] | None, seed: int = 
     return estimates, unavailable, evaluations, traced
 
 
-def _confirm(plan: Plan, judgement: Judgement, estimates: list[Estimate]) -> tuple[list[Estimate], int]:
-    """With a single reference, re-check its failing entries with Richardson extrapolation.
+def _confirm(plan: Plan, judgement: Judgement, estimates: list[Estimate], seed: int
+             ) -> tuple[list[Estimate], int, dict[str, str]]:
+    """With a single reference, re-check its failing entries with an independent method.
 
-    A failing entry where a second, differently stepped method disagrees with
-    the first is a kink or noise, not the user's mistake; the disagreement shows
-    up as an unreliable entry when the judgement is made again.
+    The complex step is used when the loss accepts complex parameters, returns
+    the real loss as the real part, and agrees with central differences along a
+    random direction per tensor (a loss with abs() or real casts inside accepts
+    complex numbers yet is not complex-analytic, and its complex step is quietly
+    wrong); otherwise Richardson extrapolation, whose different steps straddle a
+    kink differently. A failing entry where the two references disagree is a
+    kink or noise, not the user's mistake: it shows up as unreliable when the
+    judgement is made again. Returns the estimates, evaluations spent, and why
+    the complex step was not used.
     """
     wanted = []
     for t, err in zip(judgement.tensors, judgement.errors):
@@ -157,10 +168,23 @@ def _confirm(plan: Plan, judgement: Judgement, estimates: list[Estimate]) -> tup
         failing = np.flatnonzero(flat > t.tolerance)
         wanted.append(failing[np.argsort(-flat[failing])][:CONFIRM_PER_TENSOR])
     if not any(len(w) for w in wanted):
-        return estimates, 0
+        return estimates, 0, {}
+    spent, unavailable = 0, {}
+    if plan.loss_eps <= EPS64:
+        cev = plan.evaluator(np.complex128)
+        reason = complex_usable(cev, plan.f0)
+        spent += cev.count
+        if reason is None:
+            analytic, cost = _complex_is_analytic(plan, cev, seed)
+            spent += cost
+            if analytic:
+                second = complex_step(cev, plan.f0, wanted)
+                return estimates + [second], spent + len(np.concatenate(wanted)), {}
+            reason = "the loss accepts complex numbers but is not complex-analytic (abs, comparisons or casts)"
+        unavailable["complex"] = reason
     ev = plan.evaluator()
     second = richardson(ev, plan.f0, wanted, eps=plan.loss_eps)
-    return estimates + [second], ev.count
+    return estimates + [second], spent + ev.count, unavailable
 
 
 def _layer_order(plan: Plan, traced: Traced | None) -> tuple[str, ...]:
@@ -251,8 +275,9 @@ def examine(loss: Callable, params: Any, *data: Any, grads: Any, deltas: Any = N
         estimates, unavailable, evaluations, traced = compute_references(plan, chosen, seed, executor, progress)
         judgement = judge(plan.structure, claimed, dtypes, estimates, unavailable, tolerance)
     if len(estimates) == 1 and not budgeted and not all(t.ok for t in judgement.tensors):
-        estimates, extra = _confirm(plan, judgement, estimates)
+        estimates, extra, why = _confirm(plan, judgement, estimates, seed)
         evaluations += extra
+        unavailable = {**unavailable, **why}
         judgement = judge(plan.structure, claimed, dtypes, estimates, unavailable, tolerance)
     order = _layer_order(plan, traced)
     evidence = Evidence(plan.structure, tuple(claimed), plan.base, judgement, _batch_sizes(plan.data), order)
