@@ -110,7 +110,7 @@ def _cosine_and_scale(c: np.ndarray, r: np.ndarray) -> tuple[float, float]:
 
 def judge(structure: Structure, claimed: Sequence[np.ndarray], claimed_dtypes: Sequence[np.dtype],
           estimates: Sequence[Estimate], unavailable: dict[str, str], tolerance: float | None = None,
-          gradient_scale: float | None = None) -> Judgement:
+          gradient_scale: float | None = None, kinks: Sequence[np.ndarray] | None = None) -> Judgement:
     """Compare claimed values with the best reference, tensor by tensor.
 
     Args:
@@ -121,6 +121,7 @@ def judge(structure: Structure, claimed: Sequence[np.ndarray], claimed_dtypes: S
         unavailable: method -> reason, for the summary.
         tolerance: overrides the default relative tolerance for every tensor.
         gradient_scale: overrides the largest reference entry used for the floor.
+        kinks: per-tensor masks of entries found to sit on a kink (not judged).
     """
     primary = estimates[0]
     others = list(estimates[1:])
@@ -131,7 +132,7 @@ def judge(structure: Structure, claimed: Sequence[np.ndarray], claimed_dtypes: S
     results, unreliable_all, errors_all, floors_all = [], [], [], []
     for k, t in enumerate(structure.tensors):
         ref = primary.values[k]
-        bad = np.zeros(t.shape, dtype=bool)
+        bad = np.zeros(t.shape, dtype=bool) if kinks is None else np.array(kinks[k], dtype=bool)
         for other in others:
             d, rt = disagreement(primary, other, k)
             with np.errstate(invalid="ignore"):

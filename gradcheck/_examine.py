@@ -187,6 +187,45 @@ def _confirm(plan: Plan, judgement: Judgement, estimates: list[Estimate], seed: 
     return estimates + [second], spent + ev.count, unavailable
 
 
+def _kinks(plan: Plan, judgement: Judgement, claimed: list[np.ndarray]) -> tuple[list[np.ndarray], int]:
+    """Find failing entries that sit on a kink, where any slope between the one-sided ones is right.
+
+    At a kink (ReLU at 0, max with a tie) autodiff and central differences may
+    agree on one number (JAX splits a tie evenly; so does the central average)
+    while the user's code takes one side: a valid subgradient, not a mistake.
+    The second difference (f(x+h) - 2 f(x) + f(x-h)) / h is h f'' on a smooth
+    loss but the jump in slope at a kink, independent of h; computing it at h and
+    h/2 tells the two apart. An entry is a kink when the second difference does
+    not halve with the step and the claimed value lies between the one-sided
+    slopes. Four evaluations per failing entry (at most CONFIRM_PER_TENSOR each).
+    """
+    ev = plan.evaluator()
+    masks = []
+    for k, (t, err) in enumerate(zip(judgement.tensors, judgement.errors)):
+        mask = np.zeros(t.shape, dtype=bool)
+        flat_err = np.nan_to_num(err.reshape(-1), nan=-1.0)
+        failing = np.flatnonzero(flat_err > t.tolerance)[:CONFIRM_PER_TENSOR]
+        work, base = ev.work[k].reshape(-1), ev.base[k].reshape(-1)
+        ref, claim, flat_mask = judgement.primary.values[k].reshape(-1), claimed[k].reshape(-1), mask.reshape(-1)
+        for i in failing:
+            h = plan.loss_eps ** (1 / 3) * max(abs(base[i]), 1.0)
+            seconds = []
+            for step in (h, h / 2):
+                work[i] = base[i] + step
+                up = ev()
+                work[i] = base[i] - step
+                down = ev()
+                work[i] = base[i]
+                seconds.append((up - 2 * plan.f0 + down) / step)
+            jump = seconds[1]
+            noise = 1e3 * plan.loss_eps * max(abs(plan.f0), 1e-300) / h
+            steady = abs(jump) > noise and abs(seconds[1]) > 0.75 * abs(seconds[0])
+            inside = abs(claim[i] - ref[i]) <= 0.5 * abs(jump) * (1 + 1e-6) + noise
+            flat_mask[i] = steady and inside
+        masks.append(mask)
+    return masks, ev.count
+
+
 def _layer_order(plan: Plan, traced: Traced | None) -> tuple[str, ...]:
     if traced is None:
         return plan.structure.layer_order
@@ -279,6 +318,11 @@ def examine(loss: Callable, params: Any, *data: Any, grads: Any, deltas: Any = N
         evaluations += extra
         unavailable = {**unavailable, **why}
         judgement = judge(plan.structure, claimed, dtypes, estimates, unavailable, tolerance)
+    if not budgeted and not all(t.ok for t in judgement.tensors):
+        kinks, extra = _kinks(plan, judgement, claimed)
+        evaluations += extra
+        if any(m.any() for m in kinks):
+            judgement = judge(plan.structure, claimed, dtypes, estimates, unavailable, tolerance, kinks=kinks)
     order = _layer_order(plan, traced)
     evidence = Evidence(plan.structure, tuple(claimed), plan.base, judgement, _batch_sizes(plan.data), order)
     findings = []

@@ -105,16 +105,26 @@ class Evaluator:
             np.copyto(self.work[k], self.base[k])
 
 
+def typical_size(x: np.ndarray) -> float:
+    """The root-mean-square of a tensor's non-zero entries, or 1 when all are zero."""
+    nonzero = np.abs(x[x != 0])
+    return float(np.sqrt(np.mean(nonzero ** 2))) if nonzero.size else 1.0
+
+
 def steps_for(x: np.ndarray, order: int, eps: float) -> np.ndarray:
     """Per-entry steps that balance truncation against rounding error.
 
     For a scheme whose truncation error is O(h^order) and whose rounding error is
-    O(eps / h), the total is smallest at h ~ eps^(1 / (order + 1)), scaled by the
-    entry's magnitude so a weight of 300 is not perturbed by the same absolute
-    amount as one of 0.003 (Nocedal & Wright, Numerical Optimization, 2nd ed.,
-    section 8.1: h = eps^(1/3) for central differences).
+    O(eps / h), the total is smallest at h ~ eps^(1 / (order + 1)) (Nocedal &
+    Wright, Numerical Optimization, 2nd ed., section 8.1: h = eps^(1/3) for
+    central differences), times the scale on which the loss varies with that
+    entry. That scale is taken as the entry's magnitude, or the tensor's typical
+    magnitude when the entry is smaller (a zero bias among weights of 0.3; a
+    tensor whose entries are all near 1e-30, where a step of 1e-5 would be
+    absurd).
     """
-    return eps ** (1.0 / (order + 1)) * np.maximum(np.abs(x), 1.0)
+    x = np.asarray(x, dtype=np.float64)
+    return eps ** (1.0 / (order + 1)) * np.maximum(np.abs(x), typical_size(x))
 
 
 def _indices(size: int, wanted: np.ndarray | None) -> np.ndarray:
@@ -131,11 +141,12 @@ def _roundoff(f0: float, h: np.ndarray, eps: float) -> np.ndarray:
 
 
 def central(ev: Evaluator, f0: float, wanted: Sequence[np.ndarray | None] | None = None,
-            eps: float = EPS64) -> Estimate:
+            eps: float = EPS64, progress: Callable[[int], None] | None = None) -> Estimate:
     """Central differences (f(x + h) - f(x - h)) / (2h), two evaluations per entry.
 
     The divisor is the step actually taken, ``(x + h) - (x - h)`` in floating
-    point, which removes the representation error of h itself.
+    point, which removes the representation error of h itself. ``progress``, when
+    given, is called with the number of evaluations after each entry.
 
     Example:
         >>> from gradcheck._tree import flatten
@@ -160,18 +171,20 @@ def central(ev: Evaluator, f0: float, wanted: Sequence[np.ndarray | None] | None
             fm = ev()
             flat[i] = x
             out[i] = (fp - fm) / (up - down)
+            if progress is not None:
+                progress(2)
         err[idx] = _roundoff(f0, h_all[idx], eps)
     return Estimate("central", tuple(values), tuple(atol), rtol=1e-6 if eps <= EPS64 else 1e-2)
 
 
 def richardson(ev: Evaluator, f0: float, wanted: Sequence[np.ndarray | None] | None = None,
-               eps: float = EPS64) -> Estimate:
+               eps: float = EPS64, progress: Callable[[int], None] | None = None) -> Estimate:
     """Richardson extrapolation of central differences: (4 D(h/2) - D(h)) / 3.
 
     D(h) has error c2 h^2 + c4 h^4 + ...; the combination cancels the h^2 term,
     leaving a fourth-order estimate, so the step can be larger (eps^(1/5)) and the
     rounding error smaller than for plain central differences. Four evaluations
-    per entry.
+    per entry. ``progress``, when given, is called with the number of evaluations after each entry.
     """
     values, atol = _empty_like(ev)
     for k, w in enumerate(ev.work):
@@ -191,6 +204,8 @@ def richardson(ev: Evaluator, f0: float, wanted: Sequence[np.ndarray | None] | N
                 flat[i] = x
                 d.append((fp - fm) / (up - down))
             out[i] = (4.0 * d[1] - d[0]) / 3.0
+            if progress is not None:
+                progress(4)
         err[idx] = 3.0 * _roundoff(f0, h_all[idx] / 2, eps)
     return Estimate("richardson", tuple(values), tuple(atol), rtol=1e-9 if eps <= EPS64 else 1e-3)
 

@@ -59,8 +59,11 @@ def test_agrees_with_scipy_differentiate(name, f, w, method, rtol):
 
 def test_step_follows_cube_root_of_epsilon():
     # Nocedal & Wright, Numerical Optimization, 2nd ed., section 8.1: h ~ eps^(1/3) for central differences.
-    h = steps_for(np.array([0.0, 0.5, -300.0]), order=2, eps=EPS64)
-    np.testing.assert_allclose(h, EPS64 ** (1 / 3) * np.array([1.0, 1.0, 300.0]))
+    x = np.array([0.0, 0.5, -300.0])
+    typical = np.sqrt((0.5 ** 2 + 300.0 ** 2) / 2)  # the tensor's typical size stands in for entries below it
+    h = steps_for(x, order=2, eps=EPS64)
+    np.testing.assert_allclose(h, EPS64 ** (1 / 3) * np.array([typical, typical, 300.0]))
+    np.testing.assert_allclose(steps_for(np.zeros(2), 2, EPS64), EPS64 ** (1 / 3))
 
 
 def test_evaluator_restores_exactly_and_counts():
