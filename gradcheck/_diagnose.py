@@ -137,26 +137,31 @@ def merge_findings(findings: list[tuple[Finding, float, int]], layer_order: Sequ
     Args:
         findings: (finding, misfit, tier) triples; lower tier means more specific
             evidence (mutants and deltas beat whole-tensor signatures).
-        layer_order: layers input to output; the layer nearest the loss comes first,
-            since in a backprop chain the upstream layers inherit its error.
+        layer_order: layers input to output. Findings in the layer nearest the loss come
+            first, since in a backprop chain the upstream layers inherit its error (a
+            width-one chain makes an inherited error look like a clean "scaled" upstream);
+            within a layer, specific kinds beat generic ones, then lower tiers, then better fits.
     """
     rank = {name: i for i, name in enumerate(layer_order)}
     generic = {"unexplained", "mismatch"}
 
     def key(item):
         f, misfit, tier = item
-        return (f.kind in generic, tier, -rank.get(f.layer, -1), misfit)
+        return (-rank.get(f.layer, -1), f.kind in generic, tier, misfit)
 
     merged: list[Finding] = []
     seen: dict[tuple, int] = {}
+    also: dict[int, list[str]] = {}
     for f, _, _ in sorted(findings, key=key):
         sig = (f.kind, None if f.factor is None else round(f.factor, 6))
         if f.kind in ("scaled", "sign-flip", "weight-decay-mismatch") and sig in seen:
-            first = merged[seen[sig]]
-            if f.where not in first.detail:
-                merged[seen[sig]] = Finding(first.kind, first.layer, first.where,
-                                            first.detail + f" (also {f.where})", first.factor)
+            also.setdefault(seen[sig], [])
+            if f.where != merged[seen[sig]].where and f.where not in also[seen[sig]]:
+                also[seen[sig]].append(f.where)
             continue
         seen.setdefault(sig, len(merged))
         merged.append(f)
+    for i, wheres in also.items():
+        f = merged[i]
+        merged[i] = Finding(f.kind, f.layer, f.where, f"{f.detail} (also in {', '.join(wheres)})", f.factor)
     return tuple(merged)

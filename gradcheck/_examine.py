@@ -23,7 +23,7 @@ import numpy as np
 
 from ._autodiff import Traced, autodiff_estimate, trace
 from ._compare import Judgement, judge
-from ._diagnose import Evidence, merge_findings, tensor_findings
+from ._diagnose import Evidence, merge_findings, scale_cause, tensor_findings
 from ._errors import BackpropMismatch, InputError, input_error
 from ._listeners import announce
 from ._numerical import COMPLEX_STEP, EPS64, Estimate, central, complex_step, complex_usable, richardson
@@ -131,16 +131,20 @@ def compute_references(plan: Plan, methods: tuple[str, ...] | None, seed: int = 
         if reason is None and eps > EPS64:
             reason = "the loss computes in float32 inside, below the complex step's accuracy"
         if reason is None:
-            estimates.append(complex_step(cev, plan.f0))
+            from ._parallel import complex_reference  # executor, or this process with a progress bar
+
+            est, spent = complex_reference(plan, executor, progress)
+            estimates.append(est)
+            evaluations += spent
         else:
             unavailable["complex"] = reason
         evaluations += cev.count
-    ev = plan.evaluator()
-    if "richardson" in wanted:
-        estimates.append(richardson(ev, plan.f0, eps=eps))
-    if "central" in wanted:
-        estimates.append(central(ev, plan.f0, eps=eps))
-    evaluations += ev.count
+    from ._parallel import entrywise_references  # executor, vectorised JAX, or the Python loop
+
+    numeric, spent = entrywise_references(plan, [m for m in ("richardson", "central") if m in wanted], eps,
+                                          executor=executor, traced=traced, progress=progress)
+    estimates.extend(numeric)
+    evaluations += spent
     if not estimates:
         raise input_error("methods", "at least one reference method this loss allows",
                           "; ".join(f"{m}: {why}" for m, why in unavailable.items()),
@@ -337,6 +341,8 @@ def examine(loss: Callable, params: Any, *data: Any, grads: Any, deltas: Any = N
                                      f"the claimed gradient differs from the reference by up to {t.error:.3g} "
                                      f"(relative) at entry {t.worst_index}, with no simple pattern; check this "
                                      "tensor's formula in the backward pass", None), t.error, 3))
+    if traced is not None and not all(t.ok for t in judgement.tensors):
+        findings.extend(_mutant_findings(plan, traced, claimed, judgement))
     for t in judgement.tensors:
         if t.checked and t.unreliable == t.checked:
             findings.append((Finding("unreliable-reference", t.layer, t.path,
@@ -371,6 +377,33 @@ def examine(loss: Callable, params: Any, *data: Any, grads: Any, deltas: Any = N
     return announce(Report(ok, tensors, build_layers(tensors, order), ranked if not ok else (),
                   plan.evaluations + evaluations, judgement.summary,
                   deltas=delta_rows, notes=tuple(notes), title=title, rates=rates))
+
+
+def _mutant_findings(plan: Plan, traced: Traced, claimed: list[np.ndarray], judgement: Judgement
+                     ) -> list[tuple[Finding, float, int]]:
+    """Tier 3: mutants of the traced forward's backward pass that reproduce every claimed tensor."""
+    from ._mutants import build_mutants, rank_mutants
+    from ._tree import _walk
+
+    def fun(tree):
+        found: list = []
+        _walk(tree, (), found)
+        return traced.fun([leaf for _, leaf in found])
+
+    import jax
+
+    with jax.enable_x64(True):
+        mutants = build_mutants(fun, list(plan.base), plan.structure)
+    tolerance = min(t.tolerance for t in judgement.tensors)
+    out = []
+    for mutant, misfit in rank_mutants(mutants, claimed, tolerance=tolerance):
+        if misfit > tolerance:
+            break
+        detail = mutant.detail
+        if mutant.kind == "scaled" and mutant.factor:
+            detail += f" Likely cause: {scale_cause(mutant.factor, _batch_sizes(plan.data))}."
+        out.append((Finding(mutant.kind, mutant.layer, mutant.where, detail, mutant.factor), misfit, 0))
+    return out[:3]
 
 
 def _repeat_findings(plan: Plan, first: list[np.ndarray], second: list[np.ndarray],

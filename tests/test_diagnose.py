@@ -32,6 +32,13 @@ PLANTED = [
      "transfer-derivative-misplaced", "hidden1"),
     ("tanh", "half_sse", "sum", (3, 5, 2), "wrong-transfer", "hidden1", True, "transfer-derivative-misplaced",
      "hidden1"),
+    # tier 3 (mutants of the traced forward), without deltas
+    ("tanh", "half_sse", "mean", (3, 5, 4, 2), "missing-transfer-derivative", "hidden2", False,
+     "missing-transfer-derivative", "hidden2"),
+    ("tanh", "softmax_ce", "mean", (3, 5, 4, 3), "transfer-derivative-misplaced", "hidden1", False,
+     "transfer-derivative-misplaced", "hidden1"),
+    ("tanh", "softmax_ce", "mean", (3, 5, 3), "partial-softmax-jacobian", None, False, "partial-softmax-jacobian",
+     "output"),
 ]
 
 
