@@ -402,7 +402,7 @@ def _mutant_findings(plan: Plan, traced: Traced, claimed: list[np.ndarray], judg
         detail = mutant.detail
         if mutant.kind == "scaled" and mutant.factor:
             detail += f" Likely cause: {scale_cause(mutant.factor, _batch_sizes(plan.data))}."
-        out.append((Finding(mutant.kind, mutant.layer, mutant.where, detail, mutant.factor), misfit, 0))
+        out.append((Finding(mutant.kind, mutant.layer, mutant.where, detail, mutant.factor), misfit, 1))
     return out[:3]
 
 
