@@ -8,12 +8,16 @@ from ._case import Case, load_case, read_description, save_case
 from ._casenet import LayerDescription, LayerProbes, NetworkDescription, NetworkLoss, describe_network
 from ._errors import BackpropMismatch, InputError
 from ._examine import assert_backprop, examine, reference
+from ._layer import examine_layer
+from ._stress import stress_inputs
 from ._report import Finding, LayerResult, ReferenceSummary, Report, TensorResult
 
 __all__ = [
     "examine",
     "assert_backprop",
     "reference",
+    "examine_layer",
+    "stress_inputs",
     "Report",
     "Finding",
     "TensorResult",

@@ -105,7 +105,7 @@ def _cosine_and_scale(c: np.ndarray, r: np.ndarray) -> tuple[float, float]:
         return 1.0, math.nan
     if rr == 0.0 or cc == 0.0:
         return 0.0, (cr / rr if rr else math.nan)
-    return cr / math.sqrt(rr * cc), cr / rr
+    return cr / (math.sqrt(rr) * math.sqrt(cc)), cr / rr
 
 
 def judge(structure: Structure, claimed: Sequence[np.ndarray], claimed_dtypes: Sequence[np.dtype],

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import dataclasses
 import functools
+import warnings
 from typing import Any, Callable, Sequence
 
 import numpy as np
@@ -175,20 +176,34 @@ def _confirm(plan: Plan, judgement: Judgement, estimates: list[Estimate], seed: 
         return estimates, 0, {}
     spent, unavailable = 0, {}
     if plan.loss_eps <= EPS64:
-        cev = plan.evaluator(np.complex128)
-        reason = complex_usable(cev, plan.f0)
-        spent += cev.count
-        if reason is None:
-            analytic, cost = _complex_is_analytic(plan, cev, seed)
-            spent += cost
-            if analytic:
-                second = complex_step(cev, plan.f0, wanted)
-                return estimates + [second], spent + len(np.concatenate(wanted)), {}
-            reason = "the loss accepts complex numbers but is not complex-analytic (abs, comparisons or casts)"
-        unavailable["complex"] = reason
+        with warnings.catch_warnings():
+            # a forward that stores complex values into real arrays would silently drop the
+            # imaginary step; turned into an error, it makes the complex step unusable instead
+            warnings.simplefilter("error", np.exceptions.ComplexWarning)
+            found = _complex_confirmation(plan, estimates, wanted, seed)
+        if found[0] is not None:
+            return estimates + [found[0]], found[1], {}
+        spent, unavailable = found[1], {"complex": found[2]}
     ev = plan.evaluator()
     second = richardson(ev, plan.f0, wanted, eps=plan.loss_eps)
     return estimates + [second], spent + ev.count, unavailable
+
+
+def _complex_confirmation(plan: Plan, estimates: list[Estimate], wanted: list[np.ndarray], seed: int
+                          ) -> tuple[Estimate | None, int, str]:
+    """The complex step at the wanted entries, or None with the evaluations spent and the reason."""
+    cev = plan.evaluator(np.complex128)
+    reason = complex_usable(cev, plan.f0)
+    if reason is not None:
+        return None, cev.count, reason
+    try:
+        analytic, cost = _complex_is_analytic(plan, cev, seed)
+        if not analytic:
+            return None, cev.count + cost, ("the loss accepts complex numbers but is not complex-analytic "
+                                            "(abs, comparisons or casts)")
+        return complex_step(cev, plan.f0, wanted), cev.count + cost, ""
+    except Exception as exc:  # the loss failed on complex input it had accepted once
+        return None, cev.count, f"the complex step raised {type(exc).__name__}"
 
 
 def _kinks(plan: Plan, judgement: Judgement, claimed: list[np.ndarray]) -> tuple[list[np.ndarray], int]:
@@ -392,11 +407,17 @@ def _mutant_findings(plan: Plan, traced: Traced, claimed: list[np.ndarray], judg
 
     import jax
 
-    with jax.enable_x64(True):
-        mutants = build_mutants(fun, list(plan.base), plan.structure)
     tolerance = min(t.tolerance for t in judgement.tensors)
+    try:
+        with jax.enable_x64(True):
+            mutants = build_mutants(fun, list(plan.base), plan.structure)
+        ranked = rank_mutants(mutants, claimed, tolerance=tolerance)
+    except InputError:
+        # tier 3 is extra evidence: a forward it cannot mutate (e.g. scalar parameters it
+        # sees as shape (1,)) leaves the tier-1 and tier-2 diagnosis standing
+        return []
     out = []
-    for mutant, misfit in rank_mutants(mutants, claimed, tolerance=tolerance):
+    for mutant, misfit in ranked:
         if misfit > tolerance:
             break
         detail = mutant.detail

@@ -69,10 +69,10 @@ def _difference(a, b):
 COUNTS = {"correct": 0, "planted": 0}
 
 
-@settings(max_examples=1000, deadline=None, derandomize=True,
+@settings(max_examples=250, deadline=None, derandomize=True,
           suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
 @given(case=correct_networks(), bug=st.sampled_from(PLANTS))
-def test_1000_correct_networks_no_false_alarm_and_every_planted_mistake_caught(case, bug):
+def test_250_correct_networks_no_false_alarm_and_every_planted_mistake_caught(case, bug):
     net, params, x, y = case
     numpy_loss = lambda p, x, y: net.loss(p, x, y)  # noqa: E731  the numpy route: central differences, confirmed
     grads = net.backward(params, x, y)[0]
@@ -97,12 +97,14 @@ def test_1000_correct_networks_no_false_alarm_and_every_planted_mistake_caught(c
 
 def test_counts_of_the_property_run_are_recorded():
     # Runs after the property test in file order; the floor keeps the property honest if filters grow.
+    # 1,000 examples passed in one run (7.5 minutes on 2 cores), over the suite's 10-minute budget,
+    # so the suite runs 250.
     if COUNTS["correct"] == 0:
         pytest.skip("run together with the property test to see the counts")
     print(f"\ncorrect networks checked without alarm: {COUNTS['correct']}; planted mistakes caught: "
           f"{COUNTS['planted']}")
-    assert COUNTS["correct"] >= 1000
-    assert COUNTS["planted"] >= 500
+    assert COUNTS["correct"] >= 250
+    assert COUNTS["planted"] >= 100
 
 
 @settings(max_examples=60, deadline=None, derandomize=True, suppress_health_check=[HealthCheck.too_slow])
