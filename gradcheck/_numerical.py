@@ -49,8 +49,8 @@ def to_scalar(out: Any, where: str = "loss", allow_complex: bool = False) -> Any
 
     Accepts Python floats, 0-d and one-element arrays (numpy or JAX), numpy scalars.
     """
-    if type(out) is float:
-        return out
+    if isinstance(out, float):  # Python floats and numpy float64 scalars: the hot path, no array round trip
+        return float(out)
     try:
         arr = np.asarray(out)
     except Exception as exc:  # a value numpy cannot read at all

@@ -1,22 +1,17 @@
 """Evaluating the loss at many perturbed points: in this process, or farmed out to an executor.
 
-Every difference scheme is written here as a list of *perturbations* plus a rule
-that combines the loss values. A perturbation is small to describe and to send:
+Every difference scheme is written here as a list of *perturbations* and a rule combining the loss values:
 
-* :class:`Entries` sets entries of one tensor to given values, one evaluation
-  per entry (central differences, Richardson extrapolation, the complex step);
-* :class:`Move` moves a contiguous range of one tensor's entries along a random
-  unit direction named by a key (directional checks). The direction is drawn
-  again wherever it is needed, so no direction is ever shipped.
+* :class:`Entries` sets entries of one tensor to given values, one evaluation per entry (central
+  differences, Richardson extrapolation, the complex step);
+* :class:`Move` moves a contiguous range of one tensor's entries along a random unit direction named by a
+  key (directional checks); the direction is drawn again wherever it is needed, never shipped.
 
-The same function, :func:`evaluate_chunk`, evaluates a chunk in this process or
-in a worker: it makes its own copies of the base point, sets each perturbation,
-calls the loss and restores the saved value. Serial and parallel runs therefore
-do the same floating-point arithmetic on the same float64 values, and a report
-does not depend on the executor (given a loss that is deterministic across
-processes). A worker receives the loss, the base params and the data once per
-chunk, with the chunk's list of perturbations. The caller's arrays are never
-sent anywhere and never written to.
+One function, :func:`evaluate_chunk`, evaluates a chunk here or in a worker: it copies the base point, sets
+each perturbation, calls the loss and restores the saved value. Serial and parallel runs do the same
+floating-point arithmetic on the same float64 values, so a report does not depend on the executor (for a
+loss deterministic across processes). A worker receives the loss, the base params and the data once per
+chunk, with the chunk's perturbations; the caller's arrays are never sent anywhere nor written to.
 """
 
 from __future__ import annotations
@@ -24,7 +19,7 @@ from __future__ import annotations
 import math
 import os
 import pickle
-from concurrent.futures import Executor, ProcessPoolExecutor, ThreadPoolExecutor, as_completed
+from concurrent.futures import Executor, ProcessPoolExecutor, as_completed
 from typing import Any, Callable, NamedTuple, Sequence, Union
 
 import numpy as np
@@ -50,6 +45,12 @@ MAX_CHUNK = 4096
 BATCHED_MIN_EVALUATIONS = 2000
 """Below this many evaluations the vectorised JAX route is not tried: compiling it takes longer
 (0.2 to 1 s measured on this project's 2-core machine) than the Python loop needs for the whole check."""
+
+BATCHED_ON_CPU = False
+"""Whether the vectorised route is used when JAX runs on the CPU. Measured on this project's 2-core machine
+(benchmarks/bench_scale.py), XLA's float64 forward pass of a 10,000-parameter MLP costs the same per copy as
+numpy's (about 15 us), so vectorising saves nothing and compiling costs 0.2 to 1 s: the Python loop is
+faster there. On an accelerator the copies run in parallel and the route pays."""
 
 
 class Entries(NamedTuple):
@@ -243,7 +244,9 @@ class ExecutorRunner:
         total = sum(_size(b) for b in blocks)
         if total == 0:
             return np.array([])
-        parts = min(total, max(self.workers * CHUNKS_PER_WORKER, math.ceil(total / MAX_CHUNK)))
+        # Several chunks per worker for balance, but no more chunks than quarter-lists: each chunk ships the params.
+        parts = max(min(total, self.workers * CHUNKS_PER_WORKER, max(self.workers, total // 4)),
+                    math.ceil(total / MAX_CHUNK))
         chunks = _split(blocks, parts)
         futures = {}
         results: list[Any] = [None] * len(chunks)
@@ -266,51 +269,45 @@ class ExecutorRunner:
         return np.concatenate(results)
 
 
-def _entry_blocks(plan: Any, order: int, eps: float, wanted: Sequence[np.ndarray | None] | None, shift: float):
-    """Per tensor: the entries, their steps and the +/- values, as the serial schemes compute them."""
+def _differences(run: Callable, plan: Any, eps: float, wanted: Sequence[np.ndarray | None] | None, order: int,
+                 fractions: Sequence[float]) -> tuple[list, list[np.ndarray], list[np.ndarray]]:
+    """Per tensor: its entries, steps, and the central differences at each fraction of the step.
+
+    The steps and the arithmetic are those of the loops in ``_numerical`` (the divisor is the step really
+    taken, ``(x + h) - (x - h)``), so a serial runner reproduces them bit for bit.
+    """
+    parts = []
     for k, b in enumerate(plan.base):
         flat = b.reshape(-1)
         idx = np.arange(flat.size) if wanted is None or wanted[k] is None else np.asarray(wanted[k], np.int64)
-        h = steps_for(flat, order, eps)[idx] * shift
-        yield k, idx, flat[idx], h
+        parts.append((k, idx, flat[idx], steps_for(flat, order, eps)[idx]))
+    f = run([Entries(k, idx, x + sign * h * q) for k, idx, x, h in parts for q in fractions for sign in (1.0, -1.0)])
+    out, at = [], 0
+    for k, idx, x, h in parts:
+        ds = []
+        for q in fractions:  # h * q is exact: q is 1 or 1/2
+            hq, n = h * q, idx.size
+            ds.append((f[at:at + n] - f[at + n:at + 2 * n]) / ((x + hq) - (x - hq)))
+            at += 2 * n
+        out.append(ds)
+    values = [np.full(t.shape, np.nan) for t in plan.structure.tensors]
+    atol = [np.full(t.shape, np.inf) for t in plan.structure.tensors]
+    return [(k, idx, h, ds) for (k, idx, _, h), ds in zip(parts, out)], values, atol
 
 
 def central_by(run: Callable, plan: Any, eps: float = EPS64, wanted: Sequence[np.ndarray | None] | None = None) -> Estimate:
     """Central differences through a runner: the same steps and arithmetic as ``_numerical.central``."""
-    values = [np.full(t.shape, np.nan) for t in plan.structure.tensors]
-    atol = [np.full(t.shape, np.inf) for t in plan.structure.tensors]
-    parts = list(_entry_blocks(plan, 2, eps, wanted, 1.0))
-    blocks = []
-    for k, idx, x, h in parts:
-        blocks += [Entries(k, idx, x + h), Entries(k, idx, x - h)]
-    f = run(blocks)
-    at = 0
-    for k, idx, x, h in parts:
-        n = idx.size
-        fp, fm = f[at:at + n], f[at + n:at + 2 * n]
-        at += 2 * n
-        values[k].reshape(-1)[idx] = (fp - fm) / ((x + h) - (x - h))
-        atol[k].reshape(-1)[idx] = _roundoff(plan.f0, h, eps)
+    parts, values, atol = _differences(run, plan, eps, wanted, 2, (1.0,))
+    for k, idx, h, (d,) in parts:
+        values[k].reshape(-1)[idx], atol[k].reshape(-1)[idx] = d, _roundoff(plan.f0, h, eps)
     return Estimate("central", tuple(values), tuple(atol), rtol=1e-6 if eps <= EPS64 else 1e-2)
 
 
 def richardson_by(run: Callable, plan: Any, eps: float = EPS64,
                   wanted: Sequence[np.ndarray | None] | None = None) -> Estimate:
     """Richardson extrapolation through a runner: the same steps and arithmetic as ``_numerical.richardson``."""
-    values = [np.full(t.shape, np.nan) for t in plan.structure.tensors]
-    atol = [np.full(t.shape, np.inf) for t in plan.structure.tensors]
-    parts = list(_entry_blocks(plan, 4, eps, wanted, 1.0))
-    blocks = []
-    for k, idx, x, h in parts:
-        blocks += [Entries(k, idx, x + h), Entries(k, idx, x - h), Entries(k, idx, x + h / 2), Entries(k, idx, x - h / 2)]
-    f = run(blocks)
-    at = 0
-    for k, idx, x, h in parts:
-        n = idx.size
-        f1p, f1m, f2p, f2m = (f[at + j * n:at + (j + 1) * n] for j in range(4))
-        at += 4 * n
-        d1 = (f1p - f1m) / ((x + h) - (x - h))
-        d2 = (f2p - f2m) / ((x + h / 2) - (x - h / 2))
+    parts, values, atol = _differences(run, plan, eps, wanted, 4, (1.0, 0.5))
+    for k, idx, h, (d1, d2) in parts:
         values[k].reshape(-1)[idx] = (4.0 * d2 - d1) / 3.0
         atol[k].reshape(-1)[idx] = 3.0 * _roundoff(plan.f0, h / 2, eps)
     return Estimate("richardson", tuple(values), tuple(atol), rtol=1e-9 if eps <= EPS64 else 1e-3)
@@ -342,15 +339,22 @@ def complex_by(run: Callable, plan: Any) -> Estimate:
 _COST = {"richardson": 4, "central": 2}
 
 
+def _vectorising_pays() -> bool:
+    """Whether JAX runs on an accelerator (or :data:`BATCHED_ON_CPU` asks for the route anyway)."""
+    import jax  # only called once the loss has been traced, so JAX is loaded already
+
+    return BATCHED_ON_CPU or jax.default_backend() != "cpu"
+
+
 def entrywise_references(plan: Any, methods: Sequence[str], eps: float, executor: Executor | None = None,
                          traced: Any = None, progress: bool | None = None) -> tuple[list[Estimate], int]:
     """Richardson extrapolation and/or central differences for every entry, by the route this check allows.
 
     With an executor, the evaluations are farmed out to it. Without one, a loss
     that JAX can trace is evaluated in vectorised chunks (``_batched``) when
-    there are enough evaluations to repay compiling, and the traced loss agrees
-    with the loss itself at the base point; otherwise the plain Python loop of
-    ``_numerical`` runs. Returns the estimates (in ``methods`` order) and the
+    that pays (an accelerator, see :data:`BATCHED_ON_CPU`; enough evaluations to
+    repay compiling) and the traced loss agrees with the loss itself at the base
+    point; otherwise the plain Python loop of ``_numerical`` runs. Returns the estimates (in ``methods`` order) and the
     number of loss evaluations spent.
     """
     methods = [m for m in methods if m in _COST]
@@ -365,7 +369,7 @@ def entrywise_references(plan: Any, methods: Sequence[str], eps: float, executor
         runner: Any = None
         if executor is not None:
             runner = ExecutorRunner(plan, executor, progress=bar.callback)
-        elif traced is not None and total >= BATCHED_MIN_EVALUATIONS:
+        elif traced is not None and total >= BATCHED_MIN_EVALUATIONS and _vectorising_pays():
             from ._batched import BatchedRunner
 
             runner = BatchedRunner(traced, plan, progress=bar.callback)

@@ -65,6 +65,7 @@ class ProgressBar:
         self.start = time.monotonic()
         self._show_after = self.start + delay
         self._last = 0.0
+        self._width = 0
         self._stride = max(1, self.total // 2000)
         self._next = self._stride
 
@@ -95,13 +96,15 @@ class ProgressBar:
         eta_text = f", {eta:.0f}s left" if frac < 1.0 and eta == eta else ""
         line = (f"\r{self.label} [{'#' * filled}{'.' * (WIDTH - filled)}] {self.done}/{self.total} "
                 f"evaluations {100 * frac:3.0f}% ({elapsed:.0f}s{eta_text})")
-        self.stream.write(line.ljust(len(line) + 4))
+        self._width = max(self._width, len(line))
+        self.stream.write(line.ljust(self._width))  # blanks over the rest of a longer earlier line
         self.stream.flush()
         self.drawn = True
 
     def close(self) -> None:
-        """Draw the final state and end the line, if anything was drawn."""
+        """Draw the final state (the work is done, so it is 100%) and end the line, if anything was drawn."""
         if self.enabled and self.drawn:
+            self.total = max(self.done, 1)
             self._draw(time.monotonic())
             self.stream.write("\n")
             self.stream.flush()

@@ -121,7 +121,26 @@ def drifting_loss(p, x, y, xp=np):
     return (1.0 if xp is np else 1.01) * mlp_loss(p, x, y, xp=xp)
 
 
-def test_a_traced_loss_that_computes_another_function_falls_back_to_the_loop():
+@pytest.fixture
+def vectorise_on_cpu(monkeypatch):
+    import gradcheck._parallel
+
+    monkeypatch.setattr(gradcheck._parallel, "BATCHED_ON_CPU", True)
+
+
+@pytest.mark.skipif(jax.default_backend() != "cpu", reason="the default differs on an accelerator")
+def test_on_the_cpu_the_loop_is_used_by_default():
+    p, x, y = make(n_h=200)
+    plan = make_plan(mlp_loss, p, (x, y))
+    traced = trace(plan.loss, plan.structure, plan.base, plan.data, plan.kwargs)
+    (est,), spent = entrywise_references(plan, ["central"], plan.loss_eps, traced=traced)
+    loop = central(plan.evaluator(), plan.f0, eps=plan.loss_eps)
+    for a, b in zip(est.values, loop.values):
+        np.testing.assert_array_equal(a, b)
+    assert spent == 2 * plan.structure.size
+
+
+def test_a_traced_loss_that_computes_another_function_falls_back_to_the_loop(vectorise_on_cpu):
     p, x, y = make(n_h=200)  # 1,000+ entries, enough evaluations for the vectorised route
     plan = make_plan(drifting_loss, p, (x, y))
     traced = trace(plan.loss, plan.structure, plan.base, plan.data, plan.kwargs)
@@ -133,7 +152,7 @@ def test_a_traced_loss_that_computes_another_function_falls_back_to_the_loop():
     assert spent == 2 * plan.structure.size + 1
 
 
-def test_examine_takes_the_vectorised_route_for_a_traceable_loss():
+def test_examine_takes_the_vectorised_route_for_a_traceable_loss(vectorise_on_cpu):
     p, x, y = make(n_h=200)
     plan = make_plan(mlp_loss, p, (x, y))
     traced = trace(plan.loss, plan.structure, plan.base, plan.data, plan.kwargs)

@@ -15,6 +15,7 @@ import numpy as np
 import pytest
 
 import gradcheck
+import gradcheck._budget as budget_module
 from gradcheck._budget import DEFAULT_BUDGET, MAX_DIRECTIONS, detectable_norm, miss_probability
 from gradcheck._errors import InputError
 
@@ -127,6 +128,32 @@ def test_a_correct_large_network_passes_without_false_alarms(seed):
     assert all(t.checked == t.size for t in report.tensors)
     assert report.references.primary == "directional"
     assert "ran on a budget of 1,000 loss evaluations" in report.notes[0]
+
+
+def make_saturated(seed):
+    """tanh units driven hard (weights x10, inputs x30): the loss curves sharply, so truncation error is large."""
+    rng = np.random.default_rng(seed)
+    p = {"l1": {"W": 10 * rng.standard_normal((40, 20)) / math.sqrt(40), "b": np.zeros(20)},
+         "l2": {"W": 10 * rng.standard_normal((20, 5)) / math.sqrt(20), "b": np.zeros(5)}}
+    return p, 30 * rng.standard_normal((10, 40)), rng.standard_normal((10, 5))
+
+
+@pytest.mark.parametrize("seed", [1, 3, 4, 5])
+def test_truncation_error_is_not_taken_for_a_mistake(seed, monkeypatch):
+    p, x, y = make_saturated(seed)
+    g = mlp_grads(p, x, y)
+    assert gradcheck.examine(mlp_loss_numpy, p, x, y, grads=g, budget=80, seed=seed).ok
+    # Without the half-step confirmation the same tests fail: the check above is not vacuous.
+    monkeypatch.setattr(budget_module, "_confirm_suspects", lambda *args: None)
+    assert not gradcheck.examine(mlp_loss_numpy, p, x, y, grads=g, budget=80, seed=seed).ok
+
+
+@pytest.mark.parametrize("seed", [1, 3])
+def test_a_real_mistake_survives_the_half_step_confirmation(seed):
+    p, x, y = make_saturated(seed)
+    g = planted(mlp_grads(p, x, y), ("l2", "W"), (4, 2), 1.01)
+    report = gradcheck.examine(mlp_loss_numpy, p, x, y, grads=g, budget=80, seed=seed)
+    assert report.tensor("l2.W").worst_index == (4, 2)
 
 
 def test_a_pass_states_its_meaning_with_a_probability():
