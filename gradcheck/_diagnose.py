@@ -1,4 +1,4 @@
-"""Diagnosis, tier 1: whole-tensor signatures of common backward-pass mistakes.
+"""Diagnosis: whole-tensor signatures (tier 1), tier-3 mutants as findings, repeated calls.
 
 Each signature is a hypothesis "claimed = T(reference)" for a simple transform T
 (negation, a constant factor, a transpose, another tensor's reference, reference
@@ -12,15 +12,20 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import Sequence
+from typing import TYPE_CHECKING, Sequence
 
 import numpy as np
 
 from ._compare import Judgement, relative_error
+from ._errors import InputError
 from ._report import Finding
 from ._tree import Structure
 
-__all__ = ["Evidence", "tensor_findings", "merge_findings", "scale_cause"]
+if TYPE_CHECKING:
+    from ._autodiff import Traced
+    from ._plan import Plan
+
+__all__ = ["Evidence", "tensor_findings", "merge_findings", "scale_cause", "mutant_findings", "repeat_findings"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -165,3 +170,60 @@ def merge_findings(findings: list[tuple[Finding, float, int]], layer_order: Sequ
         f = merged[i]
         merged[i] = Finding(f.kind, f.layer, f.where, f"{f.detail} (also in {', '.join(wheres)})", f.factor)
     return tuple(merged)
+
+
+def mutant_findings(plan: Plan, traced: Traced, claimed: list[np.ndarray], judgement: Judgement
+                     ) -> list[tuple[Finding, float, int]]:
+    """Tier 3: mutants of the traced forward's backward pass that reproduce every claimed tensor."""
+    from ._mutants import build_mutants, rank_mutants
+    from ._tree import _walk
+
+    def fun(tree):
+        found: list = []
+        _walk(tree, (), found)
+        return traced.fun([leaf for _, leaf in found])
+
+    import jax
+
+    tolerance = min(t.tolerance for t in judgement.tensors)
+    try:
+        with jax.enable_x64(True):
+            mutants = build_mutants(fun, list(plan.base), plan.structure)
+        ranked = rank_mutants(mutants, claimed, tolerance=tolerance)
+    except InputError:
+        # tier 3 is extra evidence: a forward it cannot mutate (e.g. scalar parameters it
+        # sees as shape (1,)) leaves the tier-1 and tier-2 diagnosis standing
+        return []
+    out = []
+    for mutant, misfit in ranked:
+        if misfit > tolerance:
+            break
+        detail = mutant.detail
+        if mutant.kind == "scaled" and mutant.factor:
+            detail += f" Likely cause: {scale_cause(mutant.factor, batch_sizes(plan.data))}."
+        out.append((Finding(mutant.kind, mutant.layer, mutant.where, detail, mutant.factor), misfit, 1))
+    return out[:3]
+
+
+def repeat_findings(plan: Plan, first: list[np.ndarray], second: list[np.ndarray],
+                     judgement: Judgement) -> list[tuple[Finding, float, int]]:
+    """Compare two calls of the ``grads`` callable on the same input: buffers that are never cleared show up here."""
+    out = []
+    for k, t in enumerate(plan.structure.tensors):
+        a, b = first[k], second[k]
+        if np.array_equal(a, b, equal_nan=True):
+            continue
+        if np.allclose(b, 2 * a, rtol=1e-9, atol=0) and np.any(a != 0):
+            detail = ("a second call of the grads callable returned twice the first: gradient buffers are "
+                      "accumulated (+=) and never reset; zero them at the start of every backward pass")
+            out.append((Finding("accumulating", t.layer, t.path, detail, 2.0), 0.0, 0))
+        else:
+            detail = ("two calls of the grads callable on the same input returned different values; it keeps "
+                      "state between calls or uses unseeded randomness")
+            out.append((Finding("accumulating", t.layer, t.path, detail, None), 1.0, 1))
+    return out
+
+
+def batch_sizes(data: tuple) -> tuple[int, ...]:
+    """Leading-axis lengths of the array data: candidates for the batch size in a scale finding."""
+    return tuple(int(np.shape(x)[0]) for x in data if isinstance(x, np.ndarray) and np.ndim(x) >= 1)

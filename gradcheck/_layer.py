@@ -31,7 +31,10 @@ from ._compare import judge
 from ._diagnose import Evidence, merge_findings, tensor_findings
 from ._errors import InputError, describe, input_error
 from ._listeners import announce
-from ._examine import _confirm, _entry_point, _repeat_findings, _check_methods, compute_references
+from ._confirm import confirm_failing
+from ._diagnose import repeat_findings
+from ._examine import _entry_point
+from ._references import check_methods, compute_references
 from ._numerical import EPS64
 from ._plan import claimed_from, copy_data, make_plan
 from ._report import Finding, ReferenceSummary, Report, TensorResult, build_layers
@@ -231,7 +234,7 @@ def examine_layer(forward: Callable, backward: Callable, *inputs: Any, upstream:
         >>> report.ok, [t.path for t in report.tensors]
         (True, ['x', 'a', 'c'])
     """
-    chosen_methods = _check_methods(methods)
+    chosen_methods = check_methods(methods)
     if not callable(forward) or not callable(backward):
         bad = "forward" if not callable(forward) else "backward"
         raise input_error(bad, "a callable", describe(forward if bad == "forward" else backward),
@@ -291,7 +294,7 @@ def examine_layer(forward: Callable, backward: Callable, *inputs: Any, upstream:
         estimates, unavailable, used, _ = compute_references(plan, chosen_methods, seed + t)
         judgement = judge(plan.structure, claimed, dtypes, estimates, unavailable, tolerance)
         if len(estimates) == 1 and not all(r.ok for r in judgement.tensors):
-            estimates, more, why = _confirm(plan, judgement, estimates, seed + t)
+            estimates, more, why = confirm_failing(plan, judgement, estimates, seed + t)
             used += more
             unavailable = {**unavailable, **why}
             judgement = judge(plan.structure, claimed, dtypes, estimates, unavailable, tolerance)
@@ -300,7 +303,7 @@ def examine_layer(forward: Callable, backward: Callable, *inputs: Any, upstream:
             first_plan, first_judgement = plan, judgement
             again = backward_at(R)
             repeat, _, _ = claimed_from(plan, {names[i]: again[i] for i in checked}, "backward")
-            extra_findings = _repeat_findings(plan, claimed, repeat, judgement)
+            extra_findings = repeat_findings(plan, claimed, repeat, judgement)
         summaries.append(judgement.summary)
         evidence = Evidence(plan.structure, tuple(claimed), plan.base, judgement, batch_sizes,
                             plan.structure.layer_order)

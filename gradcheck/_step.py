@@ -11,7 +11,7 @@ A negative rate (or a step that raises the loss) is an ascent step.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any, Callable, Sequence
+from typing import Callable, Sequence
 
 import numpy as np
 

@@ -211,7 +211,7 @@ def flatten_like(structure: Structure, tree: Any, what: str) -> list[np.ndarray]
                           f"Return a {what} pytree with the same keys as params.")
     if extra:
         raise input_error(f"{what} {extra[0]}", f"exactly the parameter paths {list(structure.paths)}",
-                          f"extra entries {extra}", f"Remove them, or add the matching parameters to params.")
+                          f"extra entries {extra}", "Remove them, or add the matching parameters to params.")
     out = []
     for t in structure.tensors:
         value = claimed[t.path]

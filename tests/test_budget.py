@@ -16,7 +16,8 @@ import pytest
 
 import gradcheck
 import gradcheck._budget as budget_module
-from gradcheck._budget import DEFAULT_BUDGET, MAX_DIRECTIONS, detectable_norm, miss_probability
+from gradcheck._budget import DEFAULT_BUDGET
+from gradcheck._directional import MAX_DIRECTIONS, detectable_norm, miss_probability
 from gradcheck._errors import InputError
 
 
