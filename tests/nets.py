@@ -166,6 +166,8 @@ class Net:
             fprime = transfer_derivative(self.hidden, zs[i - 1], acts[i])
             if prev == bug_layer and bug == "missing-transfer-derivative":
                 fprime = 1.0
+            elif prev == bug_layer and bug == "double-transfer-derivative":
+                fprime = fprime ** 2
             elif prev == bug_layer and bug == "transfer-derivative-misplaced":
                 s_of_s = logistic(acts[i]) if self.hidden == "logistic" else np.tanh(acts[i])
                 fprime = transfer_derivative(self.hidden, acts[i], s_of_s)

@@ -32,7 +32,11 @@ PLANTED = [
      "transfer-derivative-misplaced", "hidden1"),
     ("tanh", "half_sse", "sum", (3, 5, 2), "wrong-transfer", "hidden1", True, "transfer-derivative-misplaced",
      "hidden1"),
+    ("tanh", "half_sse", "sum", (3, 5, 4, 2), "double-transfer-derivative", "hidden1", True,
+     "extra-transfer-derivative", "hidden1"),
     # tier 3 (mutants of the traced forward), without deltas
+    ("tanh", "half_sse", "mean", (3, 5, 4, 2), "double-transfer-derivative", "hidden2", False,
+     "extra-transfer-derivative", "hidden2"),
     ("tanh", "half_sse", "mean", (3, 5, 4, 2), "missing-transfer-derivative", "hidden2", False,
      "missing-transfer-derivative", "hidden2"),
     ("tanh", "softmax_ce", "mean", (3, 5, 4, 3), "transfer-derivative-misplaced", "hidden1", False,
@@ -54,6 +58,8 @@ def test_planted_mistake_gives_its_kind_and_layer(hidden, loss, reduction, sizes
     first = report.findings[0]
     assert (first.kind, first.layer) == (kind, layer), str(report)
     assert report.worst_layer == layer
+    # nothing else: every other finding is the same kind elsewhere, or a consequence with no kind of its own
+    assert {f.kind for f in report.findings} <= {kind, "unexplained"}, str(report)
 
 
 @pytest.mark.parametrize("bug, batch, factor, cause", [
@@ -133,3 +139,14 @@ def test_deltas_need_a_probe_keyword_and_known_names():
         gradcheck.examine(lambda p, x, y: net.loss(p, x, y), params, x, y, grads=net.grads(), deltas={"a": 1})
     with pytest.raises(gradcheck.InputError, match=r"deltas hidden9\.z: expected names of probes the loss produced"):
         gradcheck.examine(net.loss, params, x, y, grads=net.grads(), deltas={"hidden9.z": np.zeros(2)})
+
+
+def test_unreliable_reference_when_every_entry_sits_on_a_kink():
+    # ReLU at exactly 0: any slope in [0, 1] is a valid answer, so a one-sided claim of 0 cannot be judged
+    def loss(p, xp=np):
+        return xp.sum(xp.maximum(p["w"], 0.0))
+
+    report = gradcheck.examine(loss, {"w": np.zeros(3)}, grads={"w": np.zeros(3)})
+    assert not report.ok
+    assert [f.kind for f in report.findings] == ["unreliable-reference"]
+    assert "not blamed" in report.findings[0].detail
