@@ -71,6 +71,29 @@ def _nondeterministic(plan: Plan, title: str) -> Report:
                   ReferenceSummary("none", (), {}, {"all": "the loss is not deterministic"}), title=title)
 
 
+def _tensor_findings(evidence: Evidence) -> list[tuple[Finding, float, int]]:
+    """Tier-1 findings for every failing tensor, ``unexplained`` where no signature fits, and
+    ``unreliable-reference`` where no entry of a tensor could be judged."""
+    findings: list[tuple[Finding, float, int]] = []
+    for k, t in enumerate(evidence.judgement.tensors):
+        if t.checked and t.unreliable == t.checked:
+            findings.append((Finding("unreliable-reference", t.layer, t.path,
+                                     f"the references disagree with each other at every entry of {t.path} (a kink, "
+                                     "a non-smooth or noisy loss), so its claimed values could not be judged; the "
+                                     "user's value is not blamed: check it at another point", None), 1.0, 3))
+        if t.ok:
+            continue
+        found = tensor_findings(evidence, k)
+        if found:
+            findings.extend((f, m, 2) for f, m in found[:3])
+        else:
+            findings.append((Finding("unexplained", t.layer, t.path,
+                                     f"the claimed gradient differs from the reference by up to {t.error:.3g} "
+                                     f"(relative) at entry {t.worst_index}, with no simple pattern; check this "
+                                     "tensor's formula in the backward pass", None), t.error, 3))
+    return findings
+
+
 @_entry_point("examine")
 def examine(loss: Callable, params: Any, *data: Any, grads: Any, deltas: Any = None, step: Callable | None = None,
             layers: LayerSpec = None,
@@ -101,6 +124,9 @@ def examine(loss: Callable, params: Any, *data: Any, grads: Any, deltas: Any = N
     Returns:
         A :class:`gradcheck.Report`.
 
+    Raises:
+        InputError: the input cannot be checked (the message says where, what was expected and the fix).
+
     Example:
         >>> import numpy as np, gradcheck
         >>> def loss(p, x):
@@ -114,7 +140,7 @@ def examine(loss: Callable, params: Any, *data: Any, grads: Any, deltas: Any = N
     """
     chosen = check_methods(methods)
     plan = make_plan(loss, params, data, layers, seed=seed)
-    claimed, dtypes, first_raw = claimed_from(plan, grads)
+    claimed, dtypes, _ = claimed_from(plan, grads)
     repeat = claimed_from(plan, grads)[0] if callable(grads) else None
     if not plan.deterministic:
         return announce(_nondeterministic(plan, title))
@@ -145,26 +171,9 @@ def examine(loss: Callable, params: Any, *data: Any, grads: Any, deltas: Any = N
             judgement = judge(plan.structure, claimed, dtypes, estimates, unavailable, tolerance, kinks=kinks)
     order = _layer_order(plan, traced)
     evidence = Evidence(plan.structure, tuple(claimed), plan.base, judgement, batch_sizes(plan.data), order)
-    findings = []
-    for k, t in enumerate(judgement.tensors):
-        if t.ok:
-            continue
-        found = tensor_findings(evidence, k)
-        if found:
-            findings.extend((f, m, 2) for f, m in found[:3])
-        else:
-            findings.append((Finding("unexplained", t.layer, t.path,
-                                     f"the claimed gradient differs from the reference by up to {t.error:.3g} "
-                                     f"(relative) at entry {t.worst_index}, with no simple pattern; check this "
-                                     "tensor's formula in the backward pass", None), t.error, 3))
+    findings = _tensor_findings(evidence)
     if traced is not None and not all(t.ok for t in judgement.tensors):
         findings.extend(mutant_findings(plan, traced, claimed, judgement))
-    for t in judgement.tensors:
-        if t.checked and t.unreliable == t.checked:
-            findings.append((Finding("unreliable-reference", t.layer, t.path,
-                                     f"the references disagree with each other at every entry of {t.path} (a kink, "
-                                     "a non-smooth or noisy loss), so its claimed values could not be judged; the "
-                                     "user's value is not blamed: check it at another point", None), 1.0, 3))
     if repeat is not None:
         findings.extend(repeat_findings(plan, claimed, repeat, judgement))
     delta_rows: tuple[TensorResult, ...] = ()
