@@ -42,6 +42,7 @@ def _entry_point(name: str) -> Callable:
     def wrap(fn: Callable) -> Callable:
         @functools.wraps(fn)
         def inner(*args, **kwargs):
+            __tracebackhide__ = True  # pytest shows the user's call, not gradcheck's frames
             try:
                 return fn(*args, **kwargs)
             except InputError as exc:
@@ -210,6 +211,7 @@ def assert_backprop(loss: Callable, params: Any, *data: Any, grads: Any, **optio
 
     The exception's message is the full text report; its ``report`` attribute is the Report.
     """
+    __tracebackhide__ = True
     report = examine.__wrapped__(loss, params, *data, grads=grads, **options)
     if not report.ok:
         raise BackpropMismatch(report)

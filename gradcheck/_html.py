@@ -48,6 +48,8 @@ def error_colour(error: float, tolerance: float) -> tuple[int, int, int]:
 def _as_grid(errors: np.ndarray) -> np.ndarray:
     """A 2-d view of a tensor's errors, pooled by block maximum to at most MAX_CELLS per side."""
     e = np.asarray(errors, dtype=float)
+    if e.size == 0:  # an empty tensor has nothing to check: one grey cell, not a division by zero
+        return np.full((1, 1), np.nan)
     if e.ndim == 0:
         e = e.reshape(1, 1)
     elif e.ndim == 1:
@@ -84,7 +86,7 @@ def render_html(report: Any) -> str:
     """The report as one self-contained HTML fragment."""
     esc = html.escape
     colour = "#1b6f6a" if report.ok else "#d9481c"
-    parts = [f'<div class="gradcheck-report" style="font-family:sans-serif;font-size:13px">',
+    parts = ['<div class="gradcheck-report" style="font-family:sans-serif;font-size:13px">',
              f'<p style="font-weight:bold;color:{colour}">{esc(report.title)}: {esc(report.verdict())}</p>']
     if len(report.findings) > 1:
         parts.append("<ul>" + "".join(f"<li><code>{esc(f.kind)}</code> {esc(f.sentence())}</li>"
@@ -123,9 +125,10 @@ def plot_errors(report: Any, tensors: Sequence[str] | None = None):
     chosen = [t for t in report.tensors + report.deltas
               if t.errors is not None and (tensors is None or t.path in tensors)]
     lo, hi = ANCHORS[0][0], ANCHORS[-1][0]
+    # with_extremes, not set_bad: set_bad warns of its deprecation from matplotlib 3.11 on
     cmap = LinearSegmentedColormap.from_list(
-        "gradcheck", [((x - lo) / (hi - lo), tuple(c / 255 for c in rgb)) for x, rgb in ANCHORS])
-    cmap.set_bad(tuple(c / 255 for c in UNCHECKED))
+        "gradcheck", [((x - lo) / (hi - lo), tuple(c / 255 for c in rgb)) for x, rgb in ANCHORS]
+    ).with_extremes(bad=tuple(c / 255 for c in UNCHECKED))
     fig, axes = plt.subplots(1, max(len(chosen), 1), figsize=(3 * max(len(chosen), 1), 3), squeeze=False)
     for ax, t in zip(axes[0], chosen):
         grid = _as_grid(t.errors)

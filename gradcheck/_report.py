@@ -87,7 +87,7 @@ class TensorResult:
         return {"path": self.path, "layer": self.layer, "shape": list(self.shape),
                 "error": _json_float(self.error), "worst_index": [int(i) for i in self.worst_index],
                 "checked": int(self.checked), "size": int(self.size), "cosine": _json_float(self.cosine),
-                "scale": _json_float(self.scale), "ok": bool(self.ok), "tolerance": float(self.tolerance),
+                "scale": _json_float(self.scale), "ok": bool(self.ok), "tolerance": _json_float(self.tolerance),
                 "unreliable": int(self.unreliable)}
 
 
