@@ -124,7 +124,9 @@ def autodiff_estimate(traced: Traced, base: Sequence[np.ndarray], f0: float) -> 
 
     with jax.enable_x64(True):
         try:
-            grads = jax.grad(traced.fun)([jnp.asarray(b) for b in base])
+            # compiled as one program: op-by-op dispatch of a new shape's gradient measured 0.6-1.0 s
+            # per network (about 39 small compilations), the jitted gradient 0.10-0.15 s
+            grads = jax.jit(jax.grad(traced.fun))([jnp.asarray(b) for b in base])
         except Exception as exc:  # tracing worked, differentiation did not
             return f"jax.grad failed on the loss ({type(exc).__name__}: {str(exc)[:120]})"
         values = tuple(np.asarray(g, dtype=np.float64).reshape(np.shape(b)) for g, b in zip(grads, base))

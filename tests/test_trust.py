@@ -1,13 +1,21 @@
 """Trust: no false alarms on correct networks, no silent passes on planted mistakes, nothing lost.
 
 The generated networks are our own (tests/nets.py). The counts asserted here are the
-ones the README reports; the example counts are in the test names.
+ones the README reports; the example counts are in the test names, and the property
+test prints what it checked (run with ``-s`` or ``-rP`` to see it).
 """
 
 from __future__ import annotations
 
+import collections
+import multiprocessing
+import os
+import threading
+import time
 import warnings
 from collections import namedtuple
+from concurrent.futures import ProcessPoolExecutor
+from concurrent.futures.process import BrokenProcessPool
 
 import numpy as np
 import pytest
@@ -19,6 +27,16 @@ from gradcheck import InputError
 from nets import Net
 
 WIDTHS = st.sampled_from([1, 2, 3, 4, 6, 8, 12, 16, 24, 32, 48, 64])
+"""Every layer width is drawn from these twelve values (1 to 64; Hypothesis favours the first ones)."""
+
+FULL_CHECK_UP_TO = 2000
+"""Networks up to this many parameters get examine's default entry-by-entry check (two evaluations per
+parameter). Larger ones (up to 16,640 here) are checked with ``budget=BUDGET``, the directional route with
+group testing that examine gives networks above its FULL_CHECK_LIMIT: at most BUDGET evaluations instead of
+up to 33,000. In the derandomized run below that is about one network in six."""
+
+BUDGET = 1000
+"""Loss evaluations for the budgeted checks (the default budget examine gives large networks)."""
 
 
 @st.composite
@@ -32,28 +50,43 @@ def correct_networks(draw):
     net = Net(sizes, hidden=hidden, loss_kind=loss, reduction=draw(st.sampled_from(["sum", "mean"])),
               bias=draw(st.booleans()))
     dtype = draw(st.sampled_from([np.float32, np.float64]))
+    # Hidden weights 3 or 6 times larger put logistic and tanh units at pre-activations of several units,
+    # where they saturate; the output layer keeps scale 1 (bounded activations keep the logits moderate).
+    # Not drawn, because the check raises false alarms there (the xfail tests below, known limitations):
+    # saturated float32 networks, and logits in the tens (large scales through identity or ReLU units).
+    saturating = dtype is np.float64 and hidden in ("logistic", "tanh")
+    scale = draw(st.sampled_from([1.0, 3.0, 6.0])) if saturating else 1.0
     seed = draw(st.integers(0, 2 ** 32 - 1))
     batch = draw(st.integers(1, 32))
-    params, x, y = net.init(np.random.default_rng(seed), batch=batch, dtype=dtype)
+    params, x, y = net.init(np.random.default_rng(seed), batch=batch, dtype=dtype, scale=scale)
+    params[net.layer_names[-1]]["W"] /= scale
     return net, params, x, y
 
 
-PLANTS = ["sign-flip", "missing-transfer-derivative", "transposed", "zero", "sum-not-mean", "weight-decay"]
+def plantable(net, batch):
+    """Every (mistake, layer where the check must say it starts) that applies to this network.
 
-
-def _planted_layer(net, bug):
-    """The layer the mistake is planted in (where the check must say it starts), or None if it cannot apply."""
+    The mistakes are those tests/nets.py can plant, one per kind the diagnosis names: mistakes in the
+    output error start at the output layer; the others start in the layer they are planted in.
+    """
     names = net.layer_names
-    if bug in ("sign-flip", "sum-not-mean"):
-        return names[-1]
-    if bug == "missing-transfer-derivative":
-        return names[-2] if len(names) > 1 and net.hidden != "identity" else None
-    if bug == "transposed":
-        square = [n for n, (a, b) in zip(names, zip(net.sizes[:-1], net.sizes[1:])) if a == b and a > 1]
-        return square[-1] if square else None
-    if bug == "zero":
-        return names[-1] if net.bias else None
-    return names[0]
+    out = [("sign-flip", names[-1]),
+           ("half", names[-1]) if net.loss_kind in ("half_sse", "sse") else ("extra-transfer-derivative", names[-1])]
+    if net.reduction == "mean" and batch > 1:
+        out.append(("sum-not-mean", names[-1]))
+    for name, (m, n) in zip(names, zip(net.sizes[:-1], net.sizes[1:])):
+        out.append(("weight-decay", name))
+        if m == n and m > 1:
+            out.append(("transposed", name))
+        if net.bias:
+            out += [("zero", name), ("bias-sum-all", name)]
+    for name in names[:-1]:
+        if net.hidden != "identity":
+            out.append(("missing-transfer-derivative", name))
+        if net.hidden in ("logistic", "tanh"):
+            out += [(bug, name) for bug in ("wrong-transfer", "double-transfer-derivative",
+                                            "transfer-derivative-misplaced")]
+    return out
 
 
 def _norm(tree):
@@ -66,54 +99,146 @@ def _difference(a, b):
                        for n in a for k in a[n]))
 
 
-COUNTS = {"correct": 0, "planted": 0}
+def _plant(net, params, x, y, grads, pick):
+    """The picked mistake, or the next one that changes these gradients by more than 5% (None if none does).
+
+    A mistake can leave some gradients unchanged (all ReLU units active, f'^2 = f' for ReLU), and then
+    there is nothing for a check to find.
+    """
+    options = plantable(net, x.shape[0])
+    start = pick % len(options)
+    for bug, layer in options[start:] + options[:start]:
+        wrong = net.backward(params, x, y, bug=bug, bug_layer=layer)[0]
+        if _difference(wrong, grads) > 0.05 * max(_norm(grads), 1e-300):
+            return bug, layer, wrong
+    return None
 
 
-@settings(max_examples=250, deadline=None, derandomize=True,
+def _arrays(*trees):
+    """Every array in the given params/grads trees and data arrays, as bytes (to prove nothing was touched)."""
+    out = []
+    for tree in trees:
+        leaves = [v for layer in tree.values() for v in layer.values()] if isinstance(tree, dict) else [tree]
+        out += [(a.dtype.str, a.shape, a.tobytes()) for a in leaves]
+    return out
+
+
+def _saturated(net, params, x, y):
+    """Whether some logistic or tanh hidden unit has a slope below 1e-3 of its largest (|z| > 6.9 or 4.1)."""
+    if net.hidden not in ("logistic", "tanh"):
+        return False
+    zs = {}
+
+    def keep(name, value):
+        zs[name] = value
+        return value
+
+    net.loss(params, x, y, probe=keep)
+    edge = 6.9 if net.hidden == "logistic" else 4.1
+    return any(np.any(np.abs(zs[f"{name}.z"]) > edge) for name in net.layer_names[:-1])
+
+
+def numpy_route(net):
+    """The loss as a plain numpy function returning a Python float.
+
+    ``float`` of a JAX tracer fails, so examine's autodiff route is closed and every check runs on central
+    differences, confirmed by the complex step or Richardson extrapolation and tested for kinks. (Without
+    it, nets whose forward is only matmuls and sums, depth 1 or identity units with squared error, would
+    be traced by JAX, since np.sum calls the tracer's own sum; that route has its own test below.)
+    """
+    return lambda p, x, y: float(net.loss(p, x, y))
+
+
+TALLY: collections.Counter = collections.Counter()
+
+
+@settings(max_examples=1000, deadline=None, derandomize=True, database=None,
           suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
-@given(case=correct_networks(), bug=st.sampled_from(PLANTS))
-def test_250_correct_networks_no_false_alarm_and_every_planted_mistake_caught(case, bug):
+@given(case=correct_networks(), pick=st.integers(0, 2 ** 16))
+def _no_false_alarm_and_the_planted_mistake_caught(case, pick):
     net, params, x, y = case
-    numpy_loss = lambda p, x, y: net.loss(p, x, y)  # noqa: E731  the numpy route: central differences, confirmed
+    loss = numpy_route(net)
+    size = sum(v.size for layer in params.values() for v in layer.values())
+    budgeted = size > FULL_CHECK_UP_TO
+    options = {"budget": BUDGET} if budgeted else {}
     grads = net.backward(params, x, y)[0]
-    report = gradcheck.examine(numpy_loss, params, x, y, grads=grads)
-    assert report.ok, str(report)
-    assert all(f.kind == "unreliable-reference" for f in report.findings)
-    COUNTS["correct"] += 1
-    # the mirror property: the same network with one mistake from the catalogue planted
-    layer = _planted_layer(net, bug)
-    if bug == "sum-not-mean" and (net.reduction == "sum" or x.shape[0] == 1):
-        layer = None
-    if layer is None:
+    before = _arrays(params, x, y, grads)
+    report = gradcheck.examine(loss, params, x, y, grads=grads, **options)
+    assert report.references.primary == ("directional" if budgeted else "central"), str(report)
+    if budgeted:
+        assert report.evaluations <= BUDGET
+    else:
+        assert report.evaluations >= 2 * size  # every entry had its own central difference
+    # a kink or a saturated unit may leave entries unjudged, never blamed on the user
+    assert report.ok or all(f.kind == "unreliable-reference" for f in report.findings), str(report)
+    TALLY["correct"] += 1
+    TALLY["correct, some entries unreliable (not judged)"] += report.references.unreliable > 0
+    TALLY["correct, a tensor left unjudged"] += not report.ok
+    TALLY["correct, budgeted"] += budgeted
+    TALLY["evaluations, correct budgeted"] += report.evaluations if budgeted else 0
+    TALLY["evaluations"] += report.evaluations
+    TALLY["saturated units"] += _saturated(net, params, x, y)
+    for what in (net.hidden, net.loss_kind, net.reduction, x.dtype.name, f"depth {len(net.sizes) - 1}",
+                 "bias" if net.bias else "no bias"):
+        TALLY[what] += 1
+    TALLY["widest"] = max(TALLY["widest"], max(net.sizes))
+    TALLY["narrowest"] = min(TALLY.get("narrowest", 64), min(net.sizes))
+    TALLY["largest batch"] = max(TALLY["largest batch"], x.shape[0])
+    TALLY["smallest batch"] = min(TALLY.get("smallest batch", 32), x.shape[0])
+    planted = _plant(net, params, x, y, grads, pick)
+    if planted is None:
+        TALLY["no mistake changes these gradients"] += 1
         return
-    wrong = net.backward(params, x, y, bug=bug, bug_layer=layer)[0]
-    if _difference(wrong, grads) <= 0.05 * max(_norm(grads), 1e-300):
-        return  # the mistake does not change these gradients (e.g. all ReLU units active, zero bias gradient)
-    planted = gradcheck.examine(numpy_loss, params, x, y, grads=wrong)
-    assert not planted.ok, f"{bug} in {layer} passed:\n{planted}"
-    assert planted.worst_layer == layer, str(planted)
-    COUNTS["planted"] += 1
+    bug, layer, wrong = planted
+    wrong_report = gradcheck.examine(loss, params, x, y, grads=wrong, **options)
+    assert not wrong_report.ok, f"{bug} in {layer} passed:\n{wrong_report}"
+    assert wrong_report.worst_layer == layer, f"{bug} in {layer}:\n{wrong_report}"
+    assert not budgeted or wrong_report.evaluations <= BUDGET
+    TALLY["evaluations"] += wrong_report.evaluations
+    assert _arrays(params, x, y, grads) == before
+    TALLY["planted caught in their layer"] += 1
+    TALLY[f"planted {bug}"] += 1
 
 
-def test_counts_of_the_property_run_are_recorded():
-    # Runs after the property test in file order; the floor keeps the property honest if filters grow.
-    # 1,000 examples passed in one run (7.5 minutes on 2 cores), over the suite's 10-minute budget,
-    # so the suite runs 250.
-    if COUNTS["correct"] == 0:
-        pytest.skip("run together with the property test to see the counts")
-    print(f"\ncorrect networks checked without alarm: {COUNTS['correct']}; planted mistakes caught: "
-          f"{COUNTS['planted']}")
-    assert COUNTS["correct"] >= 250
-    assert COUNTS["planted"] >= 100
+def test_1000_correct_networks_no_false_alarm_and_every_planted_mistake_caught():
+    TALLY.clear()
+    start = time.perf_counter()
+    _no_false_alarm_and_the_planted_mistake_caught()
+    seconds = time.perf_counter() - start
+    print(f"\ncorrect networks checked without alarm: {TALLY['correct']} ({TALLY['correct, budgeted']} of them "
+          f"budgeted, {TALLY['saturated units']} with saturated units); planted mistakes caught in their layer: "
+          f"{TALLY['planted caught in their layer']}; {seconds:.0f} s")
+    print(dict(sorted(TALLY.items())))
+    assert TALLY["correct"] >= 1000
+    # one mistake is planted in every network; only a network that no catalogued mistake changes by 5%
+    # is spared (in the derandomized run: none)
+    assert TALLY["planted caught in their layer"] >= 990
+    # the stated ranges were really exercised
+    for what in ("logistic", "tanh", "relu", "identity", "half_sse", "sse", "softmax_ce", "logistic_ce", "sum",
+                 "mean", "float32", "float64", "depth 1", "depth 4", "bias", "no bias"):
+        assert TALLY[what] >= 20, what
+    assert (TALLY["narrowest"], TALLY["widest"], TALLY["smallest batch"], TALLY["largest batch"]) == (1, 64, 1, 32)
+    assert TALLY["correct, budgeted"] >= 50 and TALLY["correct"] - TALLY["correct, budgeted"] >= 500
+    assert TALLY["saturated units"] >= 10
+    assert len([k for k in TALLY if k.startswith("planted ") and k != "planted caught in their layer"]) >= 10
 
 
-@settings(max_examples=60, deadline=None, derandomize=True, suppress_health_check=[HealthCheck.too_slow])
-@given(case=correct_networks())
-def test_autodiff_route_no_false_alarm(case):
+@settings(max_examples=60, deadline=None, derandomize=True, database=None,
+          suppress_health_check=[HealthCheck.too_slow])
+@given(case=correct_networks(), pick=st.integers(0, 2 ** 16))
+def test_60_networks_autodiff_route_no_false_alarm_and_the_planted_mistake_caught(case, pick):
+    # the same properties with net.loss itself, whose xp keyword opens the autodiff route (and tier-3
+    # mutants for the diagnosis); 60 examples, as JAX compiles each new network's shapes (0.2 to 1 s)
     net, params, x, y = case
-    report = gradcheck.examine(net.loss, params, x, y, grads=net.grads())
+    grads = net.backward(params, x, y)[0]
+    report = gradcheck.examine(net.loss, params, x, y, grads=grads)
     assert report.references.primary == "autodiff"
     assert report.ok, str(report)
+    planted = _plant(net, params, x, y, grads, pick)
+    if planted is not None:
+        bug, layer, wrong = planted
+        wrong_report = gradcheck.examine(net.loss, params, x, y, grads=wrong)
+        assert not wrong_report.ok and wrong_report.worst_layer == layer, f"{bug} in {layer}:\n{wrong_report}"
 
 
 def test_relu_exactly_at_its_kink_is_not_blamed():
@@ -130,6 +255,20 @@ def test_relu_exactly_at_its_kink_is_not_blamed():
     assert report.references.unreliable >= 1
 
 
+@pytest.mark.parametrize("budget", [
+    None, pytest.param(100, marks=pytest.mark.xfail(strict=True, raises=AssertionError, reason=(
+        "known limitation: a budget that covers the entry-by-entry check runs it without the kink test and, "
+        "below 131 spare evaluations, without confirmation, so the one-sided slope is reported as unexplained")))])
+def test_relu_kink_with_a_one_sided_claim_is_not_blamed(budget):
+    # w[0] = 0 sits on the kink: any slope in [0, 1] is right there, and the claim takes the right-hand 0
+    def loss(p):
+        return float(np.sum(np.maximum(p["w"], 0.0)))
+
+    w = np.array([0.0, 0.5, -0.3, 1.0])
+    report = gradcheck.examine(loss, {"w": w}, grads={"w": (w > 0).astype(float)}, budget=budget)
+    assert report.ok or all(f.kind == "unreliable-reference" for f in report.findings), str(report)
+
+
 def test_saturated_logistic_units_pass():
     net = Net((3, 5, 2), hidden="logistic")
     params, x, y = net.init(np.random.default_rng(0), batch=4, scale=40.0)
@@ -137,18 +276,95 @@ def test_saturated_logistic_units_pass():
     assert report.ok, str(report)
 
 
+def _confident_softmax():
+    # float32, found by a Hypothesis run (all weights 3 times larger): softmax gives the target class 0.9998;
+    # the float32 backward differs from the same backward in float64 by 3.8e-4 (output), 9.3e-4 and 3.1e-3
+    # (hidden1) relative, the rounding of s - y = -1.9e-4 carried down through the layers (measured)
+    f32 = lambda values: np.array(values, dtype=np.float32)  # noqa: E731
+    net = Net((1, 3, 3, 2), hidden="identity", loss_kind="softmax_ce", reduction="sum", bias=False)
+    params = {"hidden1": {"W": f32([[0.37719065, -0.3963146, 1.921268]])},
+              "hidden2": {"W": f32([[0.18169233, -0.92780656, 0.626301], [2.2585943, 1.6403923, -1.2189052],
+                                    [-2.1917744, -1.079543, 0.0715787]])},
+              "output": {"W": f32([[-4.0270715, -0.37895828], [-2.1579812, -1.2683243], [-0.94268423, -0.5478479]])}}
+    return net, params, f32([[0.41163054]]), f32([[1.0, 0.0]])
+
+
+def _saturated_tanh():
+    # a hidden tanh unit at z = 8.2, where 1 - a^2 = 3e-7 is below float32's resolution at a = 1
+    net = Net((8, 2, 8), hidden="tanh", loss_kind="logistic_ce", reduction="mean")
+    return (net, *net.init(np.random.default_rng(174746918), batch=1, dtype=np.float32, scale=6.0))
+
+
+def _loss_exactly_zero():
+    # float64, found by a Hypothesis run (all weights 6 times larger): the target logit leads by 77, so the
+    # loss is log(1 + e^-77) = 0 exactly and flat to rounding, while the backward's s - y keeps gradients of
+    # 1e-36; the rounding floor of central differences scales with |f0| = 0, so 1e-36 against 0 is "wrong"
+    net = Net((1, 1, 1, 2), hidden="relu", loss_kind="softmax_ce", reduction="sum", bias=False)
+    params = {"hidden1": {"W": np.array([[2.13602936]])}, "hidden2": {"W": np.array([[6.96841299]])},
+              "output": {"W": np.array([[-4.97932668, -0.26189766]])}}
+    return net, params, np.array([[1.23292962]]), np.array([[0.0, 1.0]])
+
+
+def _logistic_output_rounds_to_one():
+    # float64, found by a Hypothesis run (all weights 3 times larger): logits 113 and 44 with targets 1, so
+    # s = 1 exactly and the backward's s - y is 0, while the loss (softplus, exact there) still sees
+    # e^-44 = 1e-19 and central differences gradients of that size; all-zero claims are reported as "zero"
+    net = Net((1, 1, 1, 2), hidden="identity", loss_kind="logistic_ce", reduction="sum", bias=False)
+    params = {"hidden1": {"W": np.array([[5.78687157]])}, "hidden2": {"W": np.array([[-1.82304754]])},
+              "output": {"W": np.array([[-6.21509771, -2.40302908]])}}
+    return net, params, np.array([[1.72690665]]), np.array([[1.0, 1.0]])
+
+
+@pytest.mark.xfail(strict=True, raises=AssertionError,
+                   reason="known limitations: a correct float32 backward through saturated units rounds beyond "
+                          "the float32 tolerance (relative 1e-3); gradients that are all below 1e-15 (saturated "
+                          "outputs) are judged relative to themselves; both are reported as the user's mistake")
+@pytest.mark.parametrize("case", [_confident_softmax, _saturated_tanh, _loss_exactly_zero,
+                                  _logistic_output_rounds_to_one],
+                         ids=["float32 confident softmax", "float32 saturated tanh", "float64 loss exactly 0",
+                              "float64 logistic output rounds to 1"])
+def test_rounding_in_saturated_units_is_not_blamed(case):
+    net, params, x, y = case()
+    loss = numpy_route(net)
+    as64 = lambda a: np.asarray(a, dtype=np.float64)  # noqa: E731
+    params64 = {n: {k: as64(v) for k, v in layer.items()} for n, layer in params.items()}
+    grads = net.backward(params, x, y)[0]
+    # preconditions (pytest.fail is not an AssertionError, so a broken case fails instead of passing as xfail)
+    if x.dtype == np.float32 and not gradcheck.examine(loss, params64, as64(x), as64(y),
+                                                       grads=net.backward(params64, as64(x), as64(y))[0]).ok:
+        pytest.fail("the same network in float64 must pass: only float32 rounding may differ")
+    if x.dtype == np.float64 and not max(_norm(grads), _norm(gradcheck.reference(loss, params, x, y))) < 1e-15:
+        pytest.fail("the claimed and the reference gradients must both be below 1e-15")
+    report = gradcheck.examine(loss, params, x, y, grads=grads)
+    assert report.ok or all(f.kind == "unreliable-reference" for f in report.findings), str(report)
+
+
 class Stop(Exception):
     pass
 
 
-@pytest.mark.parametrize("fail_at", [1, 3, 40])
+RAISE_AT = {  # where in a check the loss raises: (planted mistake, budget, call k)
+    "first look at the loss": (None, None, 1),
+    "float32 probe": (None, None, 3),
+    "central differences": (None, None, 40),
+    "complex-step confirmation": ("sign-flip", None, 60),
+    "budgeted directional tests": (None, 20, 8),
+    "budgeted group testing": ("sign-flip", 20, 16),
+}
+"""Call counts for Net((3, 4, 2)) measured on this project's code: the plan makes calls 1-3, call 4 is
+JAX's trace attempt (a failure there closes the autodiff route instead of surfacing, so it is not used),
+central differences are calls 5-56, the complex step confirming the sign flip starts at 57; with budget 20
+the directional tests are calls 5-12, and the sign flip's confirmation and bisection 13-20."""
+
+
+@pytest.mark.parametrize("stage", list(RAISE_AT), ids=list(RAISE_AT))
 @pytest.mark.parametrize("exception", [Stop, KeyboardInterrupt])
-def test_nothing_lost_when_the_loss_raises_at_call_k(fail_at, exception):
+def test_nothing_lost_when_the_loss_raises_at_call_k(stage, exception):
+    bug, budget, fail_at = RAISE_AT[stage]
     net = Net((3, 4, 2))
     params, x, y = net.init(np.random.default_rng(1))
-    grads = net.backward(params, x, y)[0]
-    snapshot = [a.tobytes() for a in (x, y, *(v for l in params.values() for v in l.values()),
-                                      *(v for l in grads.values() for v in l.values()))]
+    grads = net.backward(params, x, y, bug=bug)[0]
+    snapshot = _arrays(params, x, y, grads)
     calls = {"n": 0}
 
     def loss(p, x, y):
@@ -157,25 +373,113 @@ def test_nothing_lost_when_the_loss_raises_at_call_k(fail_at, exception):
             raise exception("raised on purpose")
         return net.loss(p, x, y)
 
-    with pytest.raises(exception):
-        gradcheck.examine(loss, params, x, y, grads=grads)
-    after = [a.tobytes() for a in (x, y, *(v for l in params.values() for v in l.values()),
-                                   *(v for l in grads.values() for v in l.values()))]
-    assert after == snapshot
+    if stage == "complex-step confirmation" and exception is Stop:
+        # by design: a loss that fails on complex input closes the complex step, and Richardson
+        # extrapolation confirms the failing entries instead (an interrupt is not caught)
+        report = gradcheck.examine(loss, params, x, y, grads=grads, budget=budget)
+        assert report.references.unavailable["complex"] == "the complex step raised Stop"
+        assert report.references.methods == ("central", "richardson")
+        assert report.findings[0].kind == "sign-flip"
+    else:
+        with pytest.raises(exception, match="raised on purpose"):
+            gradcheck.examine(loss, params, x, y, grads=grads, budget=budget)
+        assert calls["n"] == fail_at
+    assert _arrays(params, x, y, grads) == snapshot
 
 
-def test_nothing_lost_when_grads_callable_raises():
+@pytest.mark.parametrize("fail_at", [1, 2])  # examine calls the backward twice (to find buffers never reset)
+@pytest.mark.parametrize("exception, surfaces_as, message", [
+    (RuntimeError, InputError, r"grads: expected a callable .* got RuntimeError: broken backward"),
+    (KeyboardInterrupt, KeyboardInterrupt, "broken backward"),
+])
+def test_nothing_lost_when_grads_callable_raises(fail_at, exception, surfaces_as, message):
     net = Net((3, 4, 2))
     params, x, y = net.init(np.random.default_rng(1))
-    before = params["hidden1"]["W"].tobytes()
+    snapshot = _arrays(params, x, y)
+    calls = {"n": 0}
 
     def backward(p, x, y):
-        p["hidden1"]["W"] += 1.0  # even a backward that scribbles on its input cannot reach the caller's arrays
-        raise RuntimeError("broken backward")
+        calls["n"] += 1
+        p["hidden1"]["W"] += 1.0  # even a backward that scribbles on its inputs cannot reach the caller's arrays
+        x *= 2.0
+        if calls["n"] == fail_at:
+            raise exception("broken backward")
+        return net.backward(p, x, y)[0]
 
-    with pytest.raises(InputError, match=r"grads: expected a callable .* got RuntimeError: broken backward"):
+    with pytest.raises(surfaces_as, match=message):
         gradcheck.examine(net.loss, params, x, y, grads=backward)
-    assert params["hidden1"]["W"].tobytes() == before
+    assert calls["n"] == fail_at
+    assert _arrays(params, x, y) == snapshot
+
+
+DYING_NET = Net((3, 4, 2))
+WORKER_CALLS = [0]
+
+
+def dies_in_its_worker(p, x, y):
+    """The loss of DYING_NET, except that its third call inside a worker process ends that process.
+
+    ``os._exit`` raises nothing and runs no clean-up: to the pool the worker simply vanishes, as when it is
+    killed or runs out of memory. Calls in the main process (the plan, JAX's trace attempt) run normally.
+    """
+    if multiprocessing.parent_process() is not None:
+        WORKER_CALLS[0] += 1
+        if WORKER_CALLS[0] == 3:
+            os._exit(1)
+    return DYING_NET.loss(p, x, y)
+
+
+@pytest.mark.parametrize("budget", [None, 20], ids=["entry by entry", "budgeted"])
+def test_nothing_lost_when_a_worker_dies(budget):
+    params, x, y = DYING_NET.init(np.random.default_rng(2))
+    grads = DYING_NET.backward(params, x, y)[0]
+    snapshot = _arrays(params, x, y, grads)
+    outcome = {}
+
+    def check(pool):
+        try:
+            outcome["report"] = gradcheck.examine(dies_in_its_worker, params, x, y, grads=grads, budget=budget,
+                                                  executor=pool)
+        except BaseException as exc:  # noqa: BLE001  the test inspects whatever came out
+            outcome["error"] = exc
+
+    # spawn, not fork: JAX's threads are running in this process (as in tests/test_parallel.py)
+    with ProcessPoolExecutor(1, mp_context=multiprocessing.get_context("spawn")) as pool:
+        thread = threading.Thread(target=check, args=(pool,), daemon=True)
+        thread.start()
+        thread.join(120.0)  # a guard against a hang, not a timing measurement: the check ends within a second
+        assert not thread.is_alive(), "examine still waiting two minutes after its worker died"
+    assert "report" not in outcome
+    assert isinstance(outcome["error"], BrokenProcessPool), repr(outcome["error"])
+    assert _arrays(params, x, y, grads) == snapshot
+
+
+def test_a_loss_taking_one_second_per_call_stays_within_the_budget():
+    w = np.linspace(-1.0, 1.0, 6)
+    x = np.array([0.5, -1.0, 2.0, 0.3, -0.7, 1.5])
+    calls = collections.Counter()
+
+    def slow_loss(p, x):
+        time.sleep(1.0)
+        calls["evaluation" if isinstance(p["w"], np.ndarray) else "trace attempt"] += 1
+        return float(np.sum(np.sin(p["w"]) * x))
+
+    def fast_loss(p, x):
+        return float(np.sum(np.sin(p["w"]) * x))
+
+    claimed = {"w": np.cos(w) * x}
+    # the smallest budget: three evaluations for the first look at the loss, two for one directional test
+    with pytest.raises(InputError, match=r"budget: expected at least 5 loss evaluations .* got budget=4\. "
+                                         r"Pass budget=5 or more"):
+        gradcheck.examine(fast_loss, {"w": w}, x, grads=claimed, budget=4)
+    report = gradcheck.examine(slow_loss, {"w": w}, x, grads=claimed, budget=5)
+    assert report.ok and report.references.primary == "directional"
+    assert calls["evaluation"] == report.evaluations <= 5
+    assert calls["trace attempt"] == 1  # JAX's attempt to trace it costs one more call (one second)
+    calls.clear()
+    wrong = gradcheck.examine(slow_loss, {"w": w}, x, grads={"w": -claimed["w"]}, budget=5)
+    assert not wrong.ok  # the failing test wants confirming and bisecting; the budget stops both
+    assert calls["evaluation"] == wrong.evaluations <= 5
 
 
 Pair = namedtuple("Pair", ["W", "b"])
