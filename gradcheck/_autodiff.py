@@ -21,7 +21,7 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
-from ._numerical import EPS64, ROUNDOFF_SAFETY, Estimate
+from ._numerical import EPS64, ROUNDOFF_SAFETY, Estimate, rounding_scale
 from ._tree import Structure
 
 __all__ = ["Traced", "accepts_keyword", "trace", "autodiff_estimate"]
@@ -132,7 +132,7 @@ def autodiff_estimate(traced: Traced, base: Sequence[np.ndarray], f0: float) -> 
         values = tuple(np.asarray(g, dtype=np.float64).reshape(np.shape(b)) for g, b in zip(grads, base))
     if not all(np.all(np.isfinite(v)) for v in values):
         return "autodiff returned NaN or Inf (a non-differentiable operation such as sqrt at 0)"
-    atol = tuple(ROUNDOFF_SAFETY * EPS64 * max(abs(f0), 1e-300) / np.maximum(np.abs(b), 1.0) for b in base)
+    atol = tuple(ROUNDOFF_SAFETY * EPS64 * rounding_scale(f0) / np.maximum(np.abs(b), 1.0) for b in base)
     return Estimate("autodiff", values, atol, rtol=1e-12)
 
 

@@ -16,7 +16,7 @@ from typing import Any, Sequence
 import numpy as np
 
 from ._compare import relative_error
-from ._numerical import ROUNDOFF_SAFETY, _roundoff, steps_for, typical_size
+from ._numerical import ROUNDOFF_SAFETY, _roundoff, rounding_scale, steps_for, typical_size
 from ._parallel import Entries, Move, raw_direction
 
 __all__ = ["Probe", "miss_probability", "detectable_norm", "MAX_DIRECTIONS", "MAX_LOCATED", "DETECTION"]
@@ -125,7 +125,7 @@ class _Session:
                                                       self.typical[k]) for k, _, lo, hi in specs]
         f = self.runner([Move(k, key, lo, hi, sign * h) for (k, key, lo, hi), h in zip(specs, steps)
                          for sign in (1.0, -1.0)])
-        noise = ROUNDOFF_SAFETY * self.eps * max(abs(self.plan.f0), np.finfo(np.float64).tiny)
+        noise = ROUNDOFF_SAFETY * self.eps * rounding_scale(self.plan.f0)
         out = []
         for j, ((k, key, lo, hi), h) in enumerate(zip(specs, steps)):
             num, rtol = float((f[2 * j] - f[2 * j + 1]) / (2.0 * h)), self.rtols[k]

@@ -19,7 +19,7 @@ from ._errors import describe, input_error
 from ._tree import Structure
 
 __all__ = ["Estimate", "Evaluator", "to_scalar", "central", "richardson", "complex_step", "steps_for",
-           "EPS64", "EPS32"]
+           "EPS64", "EPS32", "rounding_scale"]
 
 EPS64 = float(np.finfo(np.float64).eps)
 EPS32 = float(np.finfo(np.float32).eps)
@@ -136,8 +136,24 @@ def _empty_like(ev: Evaluator) -> tuple[list[np.ndarray], list[np.ndarray]]:
             [np.full(t.shape, np.inf) for t in ev.structure.tensors])
 
 
+def rounding_scale(f0: float) -> float:
+    """The size of the values a loss of ``f0`` rounds at: ``|f0|``, or 1 when the loss is exactly zero.
+
+    A loss's rounding error is a few units of its last place, which ``|f0|`` measures. A loss that is
+    exactly 0.0 carries no scale of its own: it is almost always made by values that cancel (a fit that is
+    exact to the last bit, ``log(1 + 1e-34)`` rounding to ``log(1)``), and those values round at their own
+    size, taken here to be of order one. Without this, a loss that rounded to zero would claim an
+    infinitely accurate reference of 0 and blame a correct gradient of 1e-34.
+
+    Example:
+        >>> rounding_scale(-2.5), rounding_scale(1e-300), rounding_scale(0.0)
+        (2.5, 1e-300, 1.0)
+    """
+    return abs(f0) if f0 != 0 else 1.0
+
+
 def _roundoff(f0: float, h: np.ndarray, eps: float) -> np.ndarray:
-    return ROUNDOFF_SAFETY * eps * max(abs(f0), np.finfo(np.float64).tiny) / h
+    return ROUNDOFF_SAFETY * eps * rounding_scale(f0) / h
 
 
 def central(ev: Evaluator, f0: float, wanted: Sequence[np.ndarray | None] | None = None,
@@ -236,7 +252,7 @@ def complex_step(cev: Evaluator, f0: float, wanted: Sequence[np.ndarray | None] 
             val = cev()
             flat[i] = x
             out[i] = complex(val).imag / h
-        err[idx] = ROUNDOFF_SAFETY * EPS64 * max(abs(f0), np.finfo(np.float64).tiny) / scale[idx]
+        err[idx] = ROUNDOFF_SAFETY * EPS64 * rounding_scale(f0) / scale[idx]
     return Estimate("complex", tuple(values), tuple(atol), rtol=1e-11)
 
 

@@ -26,7 +26,7 @@ import numpy as np
 
 from ._errors import InputError, input_error
 from ._numerical import (COMPLEX_STEP, EPS64, ROUNDOFF_SAFETY, Estimate, Evaluator, _roundoff, central, richardson,
-                         steps_for)
+                         rounding_scale, steps_for)
 from ._progress import open_bar
 
 __all__ = ["Entries", "Move", "raw_direction", "unit_direction", "evaluate_chunk", "SerialRunner",
@@ -331,7 +331,7 @@ def complex_by(run: Callable, plan: Any) -> Estimate:
     for k, h, scale in parts:
         n = h.size
         values[k].reshape(-1)[:] = np.imag(f[at:at + n]) / h
-        atol[k].reshape(-1)[:] = ROUNDOFF_SAFETY * EPS64 * max(abs(plan.f0), np.finfo(np.float64).tiny) / scale
+        atol[k].reshape(-1)[:] = ROUNDOFF_SAFETY * EPS64 * rounding_scale(plan.f0) / scale
         at += n
     return Estimate("complex", tuple(values), tuple(atol), rtol=1e-11)
 

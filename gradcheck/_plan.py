@@ -104,10 +104,12 @@ def _ignores_float64(ev: Evaluator, f0: float, seed: int) -> bool:
     finally:
         ev.reset()
     # A float32 loss also returns values that float32 represents exactly; a float64 loss
-    # that is merely flat here (saturated units) almost never does (odds about 2**-29).
+    # that is merely flat here (saturated units) almost never does (odds about 2**-29),
+    # except at exactly 0.0, which both represent (a loss that rounds to zero is flat in
+    # either precision, so it tells nothing about the precision).
     with np.errstate(over="ignore"):
         representable = abs(f0) <= float(np.finfo(np.float32).max) and float(np.float32(f0)) == f0
-    return moved == f0 and representable and any(np.any(b != 0) for b in ev.base)
+    return moved == f0 and f0 != 0 and representable and any(np.any(b != 0) for b in ev.base)
 
 
 def make_plan(loss: Callable, params: Any, data: Sequence[Any], layers: LayerSpec = None,
