@@ -45,7 +45,7 @@ from ._report import ReferenceSummary, TensorResult
 from ._directional import (DETECTION, DIRECTIONAL_MARGIN, MAX_DIRECTIONS, _confirm_suspects, _localisation_cost,
                            _locate, _Session, detectable_norm, miss_probability)
 
-__all__ = ["check_within_budget", "default_budget", "DEFAULT_BUDGET"]
+__all__ = ["check_within_budget", "default_budget", "room_for_full_check", "full_check_note", "DEFAULT_BUDGET"]
 
 DEFAULT_BUDGET = 1000
 """Loss evaluations for a network above ``FULL_CHECK_LIMIT`` parameters when no budget is given."""
@@ -56,21 +56,24 @@ def default_budget(plan: Any) -> int:
     return max(DEFAULT_BUDGET, plan.evaluations + 1 + 8 * len(sizes) + _localisation_cost(max(sizes, default=1)))
 
 
-def _full_check(plan: Any, claimed: list, dtypes: list, seed: int, executor: Any, progress: Any,
-                tolerance: float | None, cap: int, avail: int) -> tuple[Judgement, int, tuple[str, ...]]:
-    """The ordinary entry-by-entry check, for a budget that covers it."""
-    from ._confirm import CONFIRM_PER_TENSOR, confirm_failing
-    from ._references import compute_references
+def full_check_note(cap: int, size: int) -> str:
+    """The report's note when a budget covers the entry-by-entry check."""
+    return (f"the budget of {cap:,} loss evaluations covers the entry-by-entry check, so all {size:,} entries were "
+            "checked one by one.")
 
-    estimates, unavailable, spent, _ = compute_references(plan, None, seed, executor, progress)
-    judgement = judge(plan.structure, claimed, dtypes, estimates, unavailable, tolerance)
-    confirm_cost = 1 + (2 + 4 * CONFIRM_PER_TENSOR) * len(plan.structure.tensors)
-    if len(estimates) == 1 and not all(t.ok for t in judgement.tensors) and avail - spent >= confirm_cost:
-        estimates, extra, why = confirm_failing(plan, judgement, estimates, seed)
-        spent += extra
-        judgement = judge(plan.structure, claimed, dtypes, estimates, {**unavailable, **why}, tolerance)
-    return judgement, spent, (f"the budget of {cap:,} loss evaluations covers the entry-by-entry check, so all "
-                              f"{plan.structure.size:,} entries were checked one by one.",)
+
+def room_for_full_check(plan: Any, traced: Any, budget: int | None) -> int | None:
+    """Validate the budget; return the evaluations left for the entry-by-entry check when it fits, else None."""
+    from ._batched import MAX_BATCH
+
+    if budget is not None and (isinstance(budget, bool) or not isinstance(budget, (int, np.integer)) or budget < 1):
+        raise input_error("budget", "a positive whole number of loss evaluations", describe(budget),
+                          "Pass e.g. budget=500, or leave it out.")
+    cap = default_budget(plan) if budget is None else int(budget)
+    avail = cap - plan.evaluations
+    if avail >= 2 * plan.structure.size + (2 + MAX_BATCH if traced is not None else 0):
+        return avail
+    return None
 
 
 def check_within_budget(plan: Any, claimed: list, dtypes: list, traced: Any, budget: int | None = None,
@@ -79,16 +82,13 @@ def check_within_budget(plan: Any, claimed: list, dtypes: list, traced: Any, bud
     """Check the claimed gradients spending at most ``budget`` loss evaluations in all (the plan's included).
 
     Returns the judgement, the evaluations spent here (the plan's are not counted again), and notes for
-    the report saying what was checked and what a pass means. A budget that covers the entry-by-entry
-    check gets that check.
+    the report saying what was checked and what a pass means. (A budget that covers the entry-by-entry
+    check never gets here: ``examine`` asks :func:`room_for_full_check` first and runs that check.)
     """
-    from ._batched import MAX_BATCH
     from ._examine import FULL_CHECK_LIMIT
 
     tensors = plan.structure.tensors
-    if budget is not None and (isinstance(budget, bool) or not isinstance(budget, (int, np.integer)) or budget < 1):
-        raise input_error("budget", "a positive whole number of loss evaluations", describe(budget),
-                          "Pass e.g. budget=500, or leave it out.")
+    room_for_full_check(plan, traced, budget)  # validates the budget
     cap = default_budget(plan) if budget is None else int(budget)
     avail = cap - plan.evaluations
     finite = [bool(np.all(np.isfinite(c))) for c in claimed]
@@ -99,8 +99,6 @@ def check_within_budget(plan: Any, claimed: list, dtypes: list, traced: Any, bud
                           f"the first look at the loss, {'1 for autodiff, ' if traced is not None else ''}2 for one "
                           "directional test of each tensor)", f"budget={budget}",
                           f"Pass budget={plan.evaluations + need} or more, or leave it out for the default.")
-    if avail >= 2 * plan.structure.size + (2 + MAX_BATCH if traced is not None else 0):
-        return _full_check(plan, claimed, dtypes, seed, executor, progress, tolerance, cap, avail)
     central_like = Estimate("central", (), (), rtol=1e-6 if plan.loss_eps <= EPS64 else 1e-2)
     entry_tol = [tolerance if tolerance is not None else tolerance_for(d, central_like) for d in dtypes]
     rtols = [tolerance if tolerance is not None else t / DIRECTIONAL_MARGIN for t in entry_tol]

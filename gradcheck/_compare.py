@@ -110,7 +110,8 @@ def _cosine_and_scale(c: np.ndarray, r: np.ndarray) -> tuple[float, float]:
 
 def judge(structure: Structure, claimed: Sequence[np.ndarray], claimed_dtypes: Sequence[np.dtype],
           estimates: Sequence[Estimate], unavailable: dict[str, str], tolerance: float | None = None,
-          gradient_scale: float | None = None, kinks: Sequence[np.ndarray] | None = None) -> Judgement:
+          gradient_scale: float | None = None, kinks: Sequence[np.ndarray] | None = None,
+          allowances: Sequence[np.ndarray] | None = None) -> Judgement:
     """Compare claimed values with the best reference, tensor by tensor.
 
     Args:
@@ -122,6 +123,8 @@ def judge(structure: Structure, claimed: Sequence[np.ndarray], claimed_dtypes: S
         tolerance: overrides the default relative tolerance for every tensor.
         gradient_scale: overrides the largest reference entry used for the floor.
         kinks: per-tensor masks of entries found to sit on a kink (not judged).
+        allowances: per-tensor absolute rounding measured for the user's own backward (see
+            ``_rounding``); an entry that differs by no more than its allowance holds.
     """
     primary = estimates[0]
     others = list(estimates[1:])
@@ -143,6 +146,8 @@ def judge(structure: Structure, claimed: Sequence[np.ndarray], claimed_dtypes: S
         key = "float32" if np.dtype(claimed_dtypes[k]).itemsize <= 4 else "float64"
         tol = tolerance if tolerance is not None else tolerance_for(claimed_dtypes[k], primary)
         floor = np.maximum(FLOOR_FRACTION[key] * gradient_scale, primary.atol[k] / tol)
+        if allowances is not None:
+            floor = np.maximum(floor, allowances[k] / tol)
         floor = np.maximum(floor, np.finfo(np.float64).tiny)
         err = relative_error(claimed[k], ref, floor)
         checked = np.isfinite(ref)

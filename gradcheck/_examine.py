@@ -22,7 +22,8 @@ import numpy as np
 
 from ._autodiff import Traced, trace
 from ._compare import judge
-from ._confirm import confirm_failing, find_kinks
+from ._confirm import (CONFIRM_PER_TENSOR, NOISE_POINTS, confirm_failing, find_kinks, measure_noise,
+                       widen_for_noise)
 from ._diagnose import (Evidence, batch_sizes, merge_findings, mutant_findings, repeat_findings,
                         tensor_findings)
 from ._errors import BackpropMismatch, InputError, input_error
@@ -31,6 +32,7 @@ from ._numerical import EPS64
 from ._plan import Plan, claimed_from, make_plan
 from ._references import METHODS, check_methods, compute_references
 from ._report import Finding, Report, TensorResult, build_layers
+from ._rounding import Allowance, measure_rounding, rounding_notes
 from ._tree import LayerSpec
 
 __all__ = ["examine", "assert_backprop", "reference", "METHODS"]
@@ -95,6 +97,74 @@ def _tensor_findings(evidence: Evidence) -> list[tuple[Finding, float, int]]:
     return findings
 
 
+def _settle(plan: Plan, claimed: list[np.ndarray], dtypes: list[np.dtype], grads: Any, estimates: list,
+            unavailable: dict[str, str], tolerance: float | None, seed: int, room: int | None):
+    """Compare, then settle every failing entry before anyone is blamed.
+
+    In order: the measured rounding of a callable float32 backward (no loss evaluations), the
+    measured rounding noise of the loss (``_confirm.measure_noise``: a loss that cancels large values
+    rounds far above its last place, and its finite differences are only that accurate), a second
+    reference for a lone one (``_confirm.confirm_failing``), and the kink test. ``room`` caps the loss
+    evaluations the last three may spend (a budget); a stage that might exceed it is skipped.
+    Returns the final judgement, the judgement without the rounding allowance, the allowance, the
+    evaluations spent, and notes (a measured noise; stages the budget left out).
+    """
+    judgement = judge(plan.structure, claimed, dtypes, estimates, unavailable, tolerance)
+    unallowed, rounding, spent = judgement, Allowance(None), 0
+
+    def failing() -> int:  # entries the next stage looks at (at most CONFIRM_PER_TENSOR per tensor)
+        return sum(min(int(np.sum(np.nan_to_num(e, nan=-1.0) > t.tolerance)), CONFIRM_PER_TENSOR)
+                   for t, e in zip(judgement.tensors, judgement.errors))
+
+    notes: list[str] = []
+    skipped: list[str] = []  # said only when something is still reported wrong at the end
+
+    def affordable(cost: int, stage: str) -> bool:
+        if room is None or spent + cost <= room:
+            return True
+        skipped.append(f"the budget left {room - spent} loss evaluations after the entry-by-entry check, fewer "
+                       f"than the {cost} that {stage} needs, so it was skipped; a larger budget (or none) may "
+                       "clear entries reported wrong here.")
+        return False
+
+    if not all(t.ok for t in judgement.tensors):
+        rounding = measure_rounding(plan, grads, claimed, dtypes, judgement, estimates, unavailable, tolerance)
+        if rounding.per_tensor is not None:
+            judgement = judge(plan.structure, claimed, dtypes, estimates, unavailable, tolerance,
+                              allowances=rounding.per_tensor)
+    allowances = rounding.per_tensor
+    if (not all(t.ok for t in judgement.tensors) and estimates[0].method != "autodiff"
+            and affordable(4 * NOISE_POINTS, "measuring the loss's rounding noise")):
+        noise, extra = measure_noise(plan, seed)
+        spent += extra
+        widened = widen_for_noise(estimates, plan, noise)
+        if widened is not estimates:
+            estimates = widened
+            judgement = judge(plan.structure, claimed, dtypes, estimates, unavailable, tolerance,
+                              allowances=allowances)
+            resolution = max(float(np.max(a, initial=0.0)) for a in estimates[0].atol)
+            notes.append(f"the loss's rounding noise is {noise:.2g} (measured), more than its value {plan.f0:.3g} "
+                         "implies (large values cancel inside it), so finite differences resolve gradient entries "
+                         f"only down to about {resolution:.1g} here: smaller ones were not really checked.")
+    # the complex step: 1 trial, 3 per tensor for its analytic test, 1 per entry; Richardson: 4 per entry
+    if (len(estimates) == 1 and not all(t.ok for t in judgement.tensors)
+            and affordable(1 + 3 * len(judgement.tensors) + 4 * failing(),
+                           "a second reference for the failing entries")):
+        estimates, extra, why = confirm_failing(plan, judgement, estimates, seed)
+        spent += extra
+        unavailable = {**unavailable, **why}
+        judgement = judge(plan.structure, claimed, dtypes, estimates, unavailable, tolerance, allowances=allowances)
+    if not all(t.ok for t in judgement.tensors) and affordable(4 * failing(), "the kink test of the failing entries"):
+        kinks, extra = find_kinks(plan, judgement, claimed)
+        spent += extra
+        if any(m.any() for m in kinks):
+            judgement = judge(plan.structure, claimed, dtypes, estimates, unavailable, tolerance, kinks=kinks,
+                              allowances=allowances)
+    if not all(t.ok for t in judgement.tensors):
+        notes.extend(skipped)
+    return judgement, unallowed, rounding, spent, notes
+
+
 @_entry_point("examine")
 def examine(loss: Callable, params: Any, *data: Any, grads: Any, deltas: Any = None, step: Callable | None = None,
             layers: LayerSpec = None,
@@ -147,29 +217,31 @@ def examine(loss: Callable, params: Any, *data: Any, grads: Any, deltas: Any = N
         return announce(_nondeterministic(plan, title))
     notes: list[str] = []
     budgeted = budget is not None or plan.structure.size > FULL_CHECK_LIMIT
+    room: int | None = None  # loss evaluations a budget leaves for the entry-by-entry check, None: no limit
+    traced: Traced | None = None
     if budgeted:
-        from ._budget import check_within_budget
+        from ._budget import full_check_note, room_for_full_check
 
         traced_or_reason = trace(plan.loss, plan.structure, plan.base, plan.data, plan.kwargs)
         traced = None if isinstance(traced_or_reason, str) else traced_or_reason
+        room = room_for_full_check(plan, traced, budget)
+    if budgeted and room is None:
+        from ._budget import check_within_budget
+
         judgement, evaluations, budget_notes = check_within_budget(
             plan, claimed, dtypes, traced, budget=budget, executor=executor, progress=progress, seed=seed,
             tolerance=tolerance)
         notes.extend(budget_notes)
-        estimates = [judgement.primary]
+        unallowed, rounding = judgement, Allowance(None)
     else:
         estimates, unavailable, evaluations, traced = compute_references(plan, chosen, seed, executor, progress)
-        judgement = judge(plan.structure, claimed, dtypes, estimates, unavailable, tolerance)
-    if len(estimates) == 1 and not budgeted and not all(t.ok for t in judgement.tensors):
-        estimates, extra, why = confirm_failing(plan, judgement, estimates, seed)
-        evaluations += extra
-        unavailable = {**unavailable, **why}
-        judgement = judge(plan.structure, claimed, dtypes, estimates, unavailable, tolerance)
-    if not budgeted and not all(t.ok for t in judgement.tensors):
-        kinks, extra = find_kinks(plan, judgement, claimed)
-        evaluations += extra
-        if any(m.any() for m in kinks):
-            judgement = judge(plan.structure, claimed, dtypes, estimates, unavailable, tolerance, kinks=kinks)
+        if room is not None:
+            notes.append(full_check_note(room + plan.evaluations, plan.structure.size))
+        judgement, unallowed, rounding, spent, settle_notes = _settle(
+            plan, claimed, dtypes, grads, estimates, unavailable, tolerance, seed,
+            None if room is None else room - evaluations)
+        evaluations += spent
+        notes.extend(settle_notes)
     order = _layer_order(plan, traced)
     evidence = Evidence(plan.structure, tuple(claimed), plan.base, judgement, batch_sizes(plan.data), order)
     findings = _tensor_findings(evidence)
@@ -197,6 +269,7 @@ def examine(loss: Callable, params: Any, *data: Any, grads: Any, deltas: Any = N
         notes.append("the loss computes in float32 internally (it does not see float64 changes of its params), "
                      f"so the references are float32-accurate and tolerances were widened to "
                      f"{min(t.tolerance for t in judgement.tensors):.1e}")
+    notes.extend(rounding_notes(unallowed, judgement, dtypes, grads, rounding))
     ok = all(t.ok for t in judgement.tensors + delta_rows) and not findings
     ranked = merge_findings(findings, order)
     tensors = judgement.tensors

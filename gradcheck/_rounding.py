@@ -1,0 +1,145 @@
+"""The rounding of a correct float32 backward pass at this point, measured by running it in float64.
+
+A float32 backward carries rounding that its formulas cannot avoid, and at some
+points it is far larger than float32's resolution of 6e-8:
+
+* a logistic or tanh unit in saturation has the derivative ``a * (1 - a)`` or
+  ``1 - a**2`` computed from an ``a`` that float32 has rounded at 6e-8 from 1, so
+  a derivative of 3e-7 comes out 20% wrong;
+* a softmax that is 0.9998 sure gives an output error ``s - y`` of -2e-4 whose
+  rounding (6e-8 of ``s``) is 3e-4 of its value, and every gradient below it
+  inherits that;
+* sums over the batch or over units that cancel keep their terms' absolute
+  rounding while their value shrinks.
+
+No fixed relative tolerance covers this without also letting real mistakes
+through. But when the backward is given as a callable it can simply be run again
+on float64 copies of the params and data. If that float64 run agrees with the
+reference, the difference between the float32 claim and the float64 run is
+exactly the rounding of the user's own code, and
+
+    |claim32 - ref| <= |claim32 - claim64| + |claim64 - ref|
+
+explains any disagreement within that measured amount. An entry is held to this
+*rounding allowance* (on top of the ordinary tolerance) only where the float64
+run itself holds at the float64 tolerance, so a mistake in the formulas, which
+shows at both precisions, is never excused. A backward that casts to float32
+inside returns float32 for float64 input and gives no measurement.
+
+Array claims cannot be re-run; for those, a failing float32 tensor whose error
+is small enough to be rounding gets a hint to pass the backward itself.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+from typing import Any, Sequence
+
+import numpy as np
+
+from ._compare import BASE_TOLERANCE, Judgement, judge
+from ._plan import Plan, copy_data
+from ._tree import flatten_like
+
+__all__ = ["Allowance", "ROUNDING_REACH", "measure_rounding", "rounding_notes"]
+
+ROUNDING_REACH = 0.05
+"""The largest relative error the hint calls possibly rounding (a float32 backward through saturated units
+measured up to 3e-3 in our runs; planted mistakes change a gradient by far more than 5%)."""
+
+
+@dataclass(frozen=True, eq=False)
+class Allowance:
+    """What the float64 run of the backward showed.
+
+    Attributes:
+        per_tensor: the absolute rounding allowance per entry (zeros where none applies), or None when
+            nothing was measured.
+        unmeasured: why nothing was measured although a float32 tensor failed, or "".
+    """
+
+    per_tensor: tuple[np.ndarray, ...] | None
+    unmeasured: str = ""
+
+
+def _float64_copy(leaf: Any) -> Any:
+    if isinstance(leaf, float):
+        return leaf
+    arr = np.asarray(leaf)
+    return np.array(arr, dtype=np.float64) if arr.dtype.kind == "f" else np.array(arr, copy=True)
+
+
+def _run_in_float64(plan: Plan, grads: Any) -> list[np.ndarray] | str:
+    """The callable's result on float64 copies of the params and the float data, or why there is none."""
+    params = plan.structure.rebuild([_float64_copy(o) for o in plan.originals])
+    try:
+        with warnings.catch_warnings(), np.errstate(all="ignore"):
+            warnings.simplefilter("ignore")
+            raw = grads(params, *copy_data(plan.user_data, promote=True))
+        arrays = flatten_like(plan.structure, raw, "grads")
+    except Exception as exc:  # the float32 call worked; a float64 one that fails only closes this route
+        return f"the backward raised {type(exc).__name__} on float64 input"
+    if any(a.dtype.kind != "f" or a.dtype.itemsize < 8 for a in arrays):
+        return "the backward returns float32 for float64 input (it casts inside)"
+    return [np.asarray(a, dtype=np.float64) for a in arrays]
+
+
+def _failing_float32(judgement: Judgement, dtypes: Sequence[np.dtype]) -> list[int]:
+    return [k for k, (t, d) in enumerate(zip(judgement.tensors, dtypes)) if not t.ok and d.itemsize <= 4]
+
+
+def measure_rounding(plan: Plan, grads: Any, claimed: Sequence[np.ndarray], dtypes: Sequence[np.dtype],
+                     judgement: Judgement, estimates: list, unavailable: dict[str, str],
+                     tolerance: float | None) -> Allowance:
+    """Run a callable backward in float64 and measure the rounding of its failing float32 claims.
+
+    Returns the allowance per entry: ``|claim32 - claim64| + |claim64 - ref|`` where the float64
+    run holds at the float64 tolerance, 0 elsewhere and in float64 tensors.
+    """
+    low = _failing_float32(judgement, dtypes)
+    if not low or not callable(grads):
+        return Allowance(None)
+    wide = _run_in_float64(plan, grads)
+    if isinstance(wide, str):
+        return Allowance(None, wide)
+    wide_judgement = judge(plan.structure, wide, [np.dtype(np.float64)] * len(wide), estimates, unavailable,
+                           tolerance)
+    allowances = []
+    for k, (t, err, ref) in enumerate(zip(wide_judgement.tensors, wide_judgement.errors, judgement.primary.values)):
+        if k not in low:
+            allowances.append(np.zeros(t.shape))
+            continue
+        holds = np.nan_to_num(err, nan=np.inf) <= t.tolerance
+        measured = np.abs(claimed[k] - wide[k]) + np.abs(wide[k] - np.nan_to_num(ref))
+        allowances.append(np.where(holds, measured, 0.0))
+    return Allowance(tuple(allowances))
+
+
+def rounding_notes(before: Judgement, after: Judgement, dtypes: Sequence[np.dtype], grads: Any,
+                   allowance: Allowance) -> list[str]:
+    """Sentences for the report: which float32 tensors the measured rounding explained, and hints.
+
+    ``before`` is the judgement without the allowance, ``after`` the final one.
+    """
+    notes = []
+    excused = [k for k in _failing_float32(before, dtypes) if after.tensors[k].ok]
+    if excused:
+        worst = max(excused, key=lambda k: before.tensors[k].error)
+        t = before.tensors[worst]
+        notes.append(f"float32 rounding measured: gradcheck ran your backward again in float64, where it agrees "
+                     f"with the reference; in float32 it is off by up to {t.error:.2g} (relative, {t.path} "
+                     f"{t.worst_index}), beyond the float32 tolerance, by its own rounding (saturated units, a "
+                     f"confident softmax or cancelling sums do that), not by a wrong formula. "
+                     f"{', '.join(before.tensors[k].path for k in excused)} passed within that measured rounding.")
+    close = [t.path for k, t in enumerate(after.tensors)
+             if k in _failing_float32(after, dtypes) and np.isfinite(t.error) and t.error <= ROUNDING_REACH]
+    if close and not callable(grads):
+        notes.append(f"{', '.join(close)}: float32 errors this small (at most {ROUNDING_REACH:g}) can be the "
+                     "rounding of a correct float32 backward (saturated units, a confident softmax); pass the "
+                     "backward itself (grads=backward) so gradcheck can run it in float64 and measure that "
+                     "rounding, or check in float64.")
+    elif close and allowance.unmeasured:
+        notes.append(f"{', '.join(close)}: float32 errors this small can be rounding, but it could not be "
+                     f"measured: {allowance.unmeasured}; check in float64.")
+    return notes
