@@ -80,3 +80,19 @@ def test_an_allowance_holds_exactly_the_measured_amount(excess, holds):
     assert judged.tensors[0].ok is holds
     within = np.abs(claimed - ref) <= np.maximum(allowance, 1e-3 * np.maximum(np.abs(claimed), np.abs(ref)))
     assert bool(within.all()) is holds
+
+
+def test_a_backward_that_answers_differently_each_call_is_not_measured():
+    # buffers never reset: every call adds another copy, so runs at nudged inputs would move by whole
+    # gradients; that is not rounding, and a wrong (1.5 times) gradient must stay wrong
+    W, X = W32.astype(np.float64), X32.astype(np.float64)
+    total = {"W": 0.0}
+
+    def leaky(p, x):
+        total["W"] = total["W"] + 1.5 * _tanh_backward(p, x)["W"]
+        return {"W": total["W"]}
+
+    report = gradcheck.examine(_tanh_loss, {"W": W}, X, grads=leaky)
+    assert not report.tensors[0].ok
+    assert {f.kind for f in report.findings} >= {"accumulating", "scaled"}
+    assert not any("rounding measured" in n for n in report.notes)
