@@ -66,12 +66,13 @@ measured up to 3e-3 in our runs; planted mistakes change a gradient by far more 
 
 @dataclass(frozen=True, eq=False)
 class Allowance:
-    """What the float64 run of the backward showed.
+    """What running the backward again showed.
 
     Attributes:
         per_tensor: the absolute rounding allowance per entry (zeros where none applies), or None when
             nothing was measured.
-        unmeasured: why nothing was measured although a float32 tensor failed, or "".
+        unmeasured: why a failing tensor's rounding was not measured (the backward raised, or casts to
+            float32 inside), or "".
     """
 
     per_tensor: tuple[np.ndarray, ...] | None
@@ -85,16 +86,27 @@ def _float64_copy(leaf: Any) -> Any:
     return np.array(arr, dtype=np.float64) if arr.dtype.kind == "f" else np.array(arr, copy=True)
 
 
-def _run_in_float64(plan: Plan, grads: Any) -> list[np.ndarray] | str:
-    """The callable's result on float64 copies of the params and the float data, or why there is none."""
-    params = plan.structure.rebuild([_float64_copy(o) for o in plan.originals])
+def _call(plan: Plan, grads: Any, params: Any, data: Sequence[Any], what: str) -> list[np.ndarray] | str:
+    """The callable's result, flattened like params, or why there is none.
+
+    Its first call worked; one that fails here only closes this measurement. Warnings and floating-point
+    errors of the extra run are the user's code meeting other input, not news for the report.
+    """
     try:
         with warnings.catch_warnings(), np.errstate(all="ignore"):
             warnings.simplefilter("ignore")
-            raw = grads(params, *copy_data(plan.user_data, promote=True))
-        arrays = flatten_like(plan.structure, raw, "grads")
-    except Exception as exc:  # the float32 call worked; a float64 one that fails only closes this route
-        return f"the backward raised {type(exc).__name__} on float64 input"
+            raw = grads(params, *data)
+        return flatten_like(plan.structure, raw, "grads")
+    except Exception as exc:
+        return f"the backward raised {type(exc).__name__} on {what}"
+
+
+def _run_in_float64(plan: Plan, grads: Any) -> list[np.ndarray] | str:
+    """The callable's result on float64 copies of the params and the float data, or why there is none."""
+    params = plan.structure.rebuild([_float64_copy(o) for o in plan.originals])
+    arrays = _call(plan, grads, params, copy_data(plan.user_data, promote=True), "float64 input")
+    if isinstance(arrays, str):
+        return arrays
     if any(a.dtype.kind != "f" or a.dtype.itemsize < 8 for a in arrays):
         return "the backward returns float32 for float64 input (it casts inside)"
     return [np.asarray(a, dtype=np.float64) for a in arrays]
@@ -125,13 +137,8 @@ def _run_nudged(plan: Plan, grads: Any, rng: np.random.Generator) -> list[np.nda
     """The callable's result at params and float data nudged by one rounding unit, or why there is none."""
     params = plan.structure.rebuild([_nudged(o, rng) for o in plan.originals])
     data = [_nudge_tree(d, rng) for d in copy_data(plan.user_data, promote=False)]
-    try:
-        with warnings.catch_warnings(), np.errstate(all="ignore"):
-            warnings.simplefilter("ignore")
-            raw = grads(params, *data)
-        return [np.asarray(a, dtype=np.float64) for a in flatten_like(plan.structure, raw, "grads")]
-    except Exception as exc:  # the first call worked; one that fails here only closes this route
-        return f"the backward raised {type(exc).__name__} on inputs moved by one rounding unit"
+    arrays = _call(plan, grads, params, data, "inputs moved by one rounding unit")
+    return arrays if isinstance(arrays, str) else [np.asarray(a, dtype=np.float64) for a in arrays]
 
 
 def _float64_allowance(plan: Plan, grads: Any, claimed: Sequence[np.ndarray], failing: list[int],
