@@ -134,14 +134,18 @@ def check_within_budget(plan: Any, claimed: list, dtypes: list, traced: Any, bud
             [float(np.max(np.abs(c))) for c, ok in zip(claimed, finite) if ok and c.size], default=0.0)
         floors = [FLOOR_FRACTION["float32" if np.dtype(d).itemsize <= 4 else "float64"] * scale for d in dtypes]
         failing = [k for k in live if k not in trusted and any(p.fails() for p in probes[k])]
+        # a tensor whose every failing test is explained by a kink of the loss is not judged (nor bisected)
+        kinked = {k for k in failing if all(session.affordable(6) and session.kink_explains(p)
+                                            for p in probes[k] if p.fails())}
+        failing = [k for k in failing if k not in kinked]
         for k in sorted(failing, key=lambda k: -max(p.error / p.rtol for p in probes[k])):
             top = max(probes[k], key=lambda p: p.error / p.rtol)
             searches[k] = _locate(session, k, top, entry_tol[k], floors[k])
     parts = [_tensor_part(k, t, plan, claimed, finite, live, probes, trusted, jud, ad, searches, entry_tol, rtols,
-                          floors) for k, t in enumerate(tensors)]
+                          floors, k in kinked) for k, t in enumerate(tensors)]
     judgement = _judgement(plan, ad, trusted, parts, unavailable, probes, scale)
     notes = _notes(plan, cap, budget is None, FULL_CHECK_LIMIT, session.used, r, seed, live, probes, trusted,
-                   searches, claimed, ad)
+                   searches, claimed, ad, kinked)
     return judgement, session.used, notes
 
 
@@ -150,12 +154,22 @@ def _unknown(shape: tuple, fill: Any) -> np.ndarray:
     return np.broadcast_to(np.asarray(fill), shape)
 
 
-def _tensor_part(k, t, plan, claimed, finite, live, probes, trusted, jud, ad, searches, entry_tol, rtols, floors):
-    """For tensor ``k``: (TensorResult, reference values, their accuracy, per-entry errors, floors, unreliable)."""
+def _tensor_part(k, t, plan, claimed, finite, live, probes, trusted, jud, ad, searches, entry_tol, rtols, floors,
+                 kinked=False):
+    """For tensor ``k``: (TensorResult, reference values, their accuracy, per-entry errors, floors, unreliable).
+
+    A ``kinked`` tensor (every failing test straddled a kink) has all its entries unreliable: not judged.
+    """
     if k in trusted:
         return jud.tensors[k], ad.values[k], ad.atol[k], jud.errors[k], jud.floors[k], jud.unreliable[k]
     values, atol, errors = _unknown(t.shape, math.nan), _unknown(t.shape, math.inf), _unknown(t.shape, math.nan)
     rest = (_unknown(t.shape, floors[k]), _unknown(t.shape, False))
+    if kinked:
+        ps = probes[k]
+        cosine, fitted = _cosine_and_scale(np.array([p.dot for p in ps]), np.array([p.num for p in ps]))
+        result = TensorResult(t.path, t.layer, t.shape, 0.0, (), t.size, cosine, fitted, True, rtols[k], t.size,
+                              t.size, errors)
+        return (result, values, atol, errors, rest[0], _unknown(t.shape, True))
     if k not in live:  # non-finite claims (no evaluation needed to judge them), or an empty tensor
         bad = np.flatnonzero(~np.isfinite(claimed[k].reshape(-1)))
         index = tuple(int(i) for i in np.unravel_index(bad[0], t.shape)) if bad.size and t.shape else ()
@@ -191,7 +205,8 @@ def _judgement(plan, ad, trusted, parts, unavailable, probes, scale) -> Judgemen
                                    dict(unavailable), int(sum(int(np.sum(parts[k][5])) for k in trusted)))
         primary = Estimate("autodiff", values, atol, ad.rtol)
     else:
-        summary = ReferenceSummary("directional", ("directional",) + located, {}, dict(unavailable), 0)
+        summary = ReferenceSummary("directional", ("directional",) + located, {}, dict(unavailable),
+                                   int(sum(int(np.sum(p[5])) for p in parts)))
         primary = Estimate("directional", values, atol, 1e-6 if plan.loss_eps <= EPS64 else 1e-2)
     return Judgement(primary, tuple(p[0] for p in parts), summary, tuple(p[5] for p in parts),
                      tuple(p[3] for p in parts), scale, tuple(p[4] for p in parts))
@@ -201,7 +216,8 @@ def _entries(t: Any, js: Sequence[int]) -> str:
     return ", ".join(str(tuple(int(i) for i in np.unravel_index(j, t.shape)) if t.shape else ()) for j in js)
 
 
-def _notes(plan, cap, default, limit, used, r, seed, live, probes, trusted, searches, claimed, ad) -> tuple[str, ...]:
+def _notes(plan, cap, default, limit, used, r, seed, live, probes, trusted, searches, claimed, ad,
+           kinked=frozenset()) -> tuple[str, ...]:
     size, tensors, total = plan.structure.size, plan.structure.tensors, plan.evaluations + used
     notes = [f"{size:,} parameters is more than the {limit:,} checked entry by entry by default, so the check ran "
              f"on a budget of {cap:,} loss evaluations ({total:,} used) instead of about {2 * size:,}; pass budget= "
@@ -223,6 +239,12 @@ def _notes(plan, cap, default, limit, used, r, seed, live, probes, trusted, sear
         if ad is not None:
             notes.append(f"{t.path}: autodiff disagrees with central differences along random directions (relative "
                          f"{max(p.ref_error for p in ps):.2g}), so it was not used for this tensor.")
+        if k in kinked:
+            notes.append(f"{t.path}: a directional test failed, but the loss has a kink along that direction (its "
+                         "slope jumps within the step: a ReLU unit or a max near a tie), so the test says nothing "
+                         "about the claimed values and they were not judged; a budget of at least "
+                         f"{2 * size + plan.evaluations:,} checks entry by entry, kinks included.")
+            continue
         if search is None:
             taus, norm = [p.tau for p in ps], float(np.linalg.norm(claimed[k]))
             e99 = detectable_norm(taus, t.size)

@@ -146,13 +146,14 @@ def merge_findings(findings: list[tuple[Finding, float, int]], layer_order: Sequ
             first, since in a backprop chain the upstream layers inherit its error (a
             width-one chain makes an inherited error look like a clean "scaled" upstream);
             within a layer, specific kinds beat generic ones, then lower tiers, then better fits.
+            ``unreliable-reference`` blames nobody, so it comes after every finding that does.
     """
     rank = {name: i for i, name in enumerate(layer_order)}
     generic = {"unexplained", "mismatch"}
 
     def key(item):
         f, misfit, tier = item
-        return (-rank.get(f.layer, -1), f.kind in generic, tier, misfit)
+        return (f.kind == "unreliable-reference", -rank.get(f.layer, -1), f.kind in generic, tier, misfit)
 
     merged: list[Finding] = []
     seen: dict[tuple, int] = {}

@@ -142,6 +142,29 @@ class _Session:
             out.append(Probe(k, key, lo, hi, num, dot, ref, scale, scale_ref, norm, rtol))
         return out
 
+    def kink_explains(self, p: Probe) -> bool:
+        """Whether a kink of the loss along ``p``'s direction, within its step, explains its failure (six evaluations).
+
+        Along a direction that moves many entries at once, some ReLU unit or max is likely to sit within a
+        step of its kink, and the central difference across it is off by up to the jump in slope, whatever
+        the claimed values. The second difference ``(f(x + h u) - 2 f(x) + f(x - h u)) / h`` is ``h f''``
+        on a smooth loss (to O(h^3)), so it halves exactly each time the step halves; across a kink it does
+        not (inside the step it stays near the jump, outside it drops to nearly nothing). Measured at h,
+        h/2 and h/4, a ratio of consecutive ones off 1/2 by more than 0.1, above the rounding floor, is a
+        kink (the test ``_confirm.find_kinks`` makes entry by entry); it explains the failure when the
+        claimed derivative is within the largest of them (a bound on the jump) of the measured one. A
+        gross mistake (a sign, a factor of 2) still fails.
+        """
+        h = self.eps ** (1 / 3) * max(float(np.linalg.norm(self.plan.base[p.k].reshape(-1)[p.lo:p.hi])),
+                                      self.typical[p.k])
+        steps = (h, h / 2, h / 4)
+        f = self.runner([Move(p.k, p.key, p.lo, p.hi, sign * step) for step in steps for sign in (1.0, -1.0)])
+        f0 = self.plan.f0
+        second = [(f[2 * i] - 2 * f0 + f[2 * i + 1]) / step for i, step in enumerate(steps)]
+        noise = 1e3 * self.eps * rounding_scale(f0) / h
+        kink = abs(second[0]) > noise and any(abs(b / a - 0.5) > 0.1 for a, b in zip(second, second[1:]) if a)
+        return kink and abs(p.num - p.dot) <= max(abs(v) for v in second)
+
     def confirm(self, p: Probe) -> Probe:
         """A failing test measured again at half the step and extrapolated (Richardson): two evaluations.
 

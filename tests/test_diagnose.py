@@ -150,3 +150,14 @@ def test_unreliable_reference_when_every_entry_sits_on_a_kink():
     assert not report.ok
     assert [f.kind for f in report.findings] == ["unreliable-reference"]
     assert "not blamed" in report.findings[0].detail
+
+
+def test_a_finding_that_blames_nobody_never_heads_the_report():
+    # an unreliable reference nearer the loss (a kink in hidden2) must not hide a mistake further back
+    from gradcheck import Finding
+    from gradcheck._diagnose import merge_findings
+
+    kink = Finding("unreliable-reference", "hidden2", "hidden2.W", "not judged")
+    wrong = Finding("unexplained", "hidden1", "hidden1.W", "differs")
+    merged = merge_findings([(kink, 1.0, 3), (wrong, 1.65, 3)], ("hidden1", "hidden2", "output"))
+    assert [f.kind for f in merged] == ["unexplained", "unreliable-reference"]
