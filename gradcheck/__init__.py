@@ -4,13 +4,25 @@ The whole public API is a handful of verbs and the results they return; every
 name below is re-exported from a private module that does one job.
 """
 
-from ._case import Case, load_case, read_description, save_case
-from ._casenet import LayerDescription, LayerProbes, NetworkDescription, NetworkLoss, describe_network
-from ._errors import BackpropMismatch, InputError
-from ._examine import assert_backprop, examine, reference
-from ._layer import examine_layer
-from ._stress import stress_inputs
-from ._report import Finding, LayerResult, ReferenceSummary, Report, TensorResult
+from ._api.examine import assert_backprop, examine, reference
+from ._api.layer import examine_layer
+from ._case.file import Case, load_case, read_description, save_case
+from ._case.network import (
+    LayerDescription,
+    LayerProbes,
+    NetworkDescription,
+    NetworkLoss,
+    describe_network,
+)
+from ._core.errors import BackpropMismatch, InputError
+from ._layers.stress import stress_inputs
+from ._report.results import (
+    Finding,
+    LayerResult,
+    ReferenceSummary,
+    Report,
+    TensorResult,
+)
 
 __all__ = [
     "examine",

@@ -29,7 +29,7 @@ from typing import Sequence
 import numpy as np
 from hypothesis import strategies as st
 
-from ._casenet import NetworkDescription, describe_network
+from ._case.network import NetworkDescription, describe_network
 
 __all__ = ["mlp_descriptions", "params_for", "batches_for", "mlp_cases"]
 

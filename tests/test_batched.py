@@ -1,8 +1,8 @@
-"""Tests for gradcheck._batched: vectorised JAX evaluation of perturbed copies.
+"""Tests for gradcheck._scale.batched: vectorised JAX evaluation of perturbed copies.
 
 Outside reference: JAX's own reverse-mode gradient (``jax.grad`` in float64) of
 the same traced loss; the vectorised central differences must agree with it to
-their stated accuracy, and with the Python loop of gradcheck._numerical, whose
+their stated accuracy, and with the Python loop of gradcheck._references.numerical, whose
 loss values differ from XLA's only by rounding. Networks are invented.
 """
 
@@ -16,11 +16,11 @@ import numpy as np
 import pytest
 
 import gradcheck
-from gradcheck._autodiff import trace
-from gradcheck._batched import BATCH_BYTES, MAX_BATCH, BatchedRunner
-from gradcheck._numerical import central, richardson
-from gradcheck._parallel import Entries, central_by, entrywise_references, richardson_by
-from gradcheck._plan import make_plan
+from gradcheck._references.autodiff import trace
+from gradcheck._scale.batched import BATCH_BYTES, MAX_BATCH, BatchedRunner
+from gradcheck._references.numerical import central, richardson
+from gradcheck._scale.runners import Entries, central_by, entrywise_references, richardson_by
+from gradcheck._check.inputs import make_plan
 
 
 def mlp_loss(p, x, y, xp=np):
@@ -108,7 +108,7 @@ def test_chunks_bound_memory(sizes, expected):
 
 
 def test_directional_moves_are_not_batched():
-    from gradcheck._parallel import Move
+    from gradcheck._scale.runners import Move
 
     p, x, y = make()
     _, runner = runner_for(p, x, y)
@@ -123,9 +123,9 @@ def drifting_loss(p, x, y, xp=np):
 
 @pytest.fixture
 def vectorise_on_cpu(monkeypatch):
-    import gradcheck._parallel
+    import gradcheck._scale.runners
 
-    monkeypatch.setattr(gradcheck._parallel, "BATCHED_ON_CPU", True)
+    monkeypatch.setattr(gradcheck._scale.runners, "BATCHED_ON_CPU", True)
 
 
 @pytest.mark.skipif(jax.default_backend() != "cpu", reason="the default differs on an accelerator")

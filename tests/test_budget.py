@@ -1,4 +1,4 @@
-"""Tests for gradcheck._budget: directional checks, group testing and the evaluation budget.
+"""Tests for gradcheck._scale.budgeted: directional checks, group testing and the evaluation budget.
 
 Outside references: the bound on the chance that a random direction misses an
 error is checked against the exact law of one coordinate of a uniform point on
@@ -15,10 +15,10 @@ import numpy as np
 import pytest
 
 import gradcheck
-import gradcheck._budget as budget_module
-from gradcheck._budget import DEFAULT_BUDGET
-from gradcheck._directional import MAX_DIRECTIONS, detectable_norm, miss_probability
-from gradcheck._errors import InputError
+import gradcheck._scale.budgeted as budget_module
+from gradcheck._scale.budgeted import DEFAULT_BUDGET
+from gradcheck._scale.directional import MAX_DIRECTIONS, detectable_norm, miss_probability
+from gradcheck._core.errors import InputError
 
 
 def linear_loss(p, x, y):

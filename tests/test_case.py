@@ -1,4 +1,4 @@
-"""Tests for gradcheck._case: writing, reading and validating case files.
+"""Tests for gradcheck._case.file: writing, reading and validating case files.
 
 The scenario (a small soil-moisture classifier with 3 sensor inputs) is invented
 for these tests. The outside references are numpy's own NPY/NPZ reader and
@@ -18,9 +18,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from gradcheck._case import Case, load_case, read_description, save_case
-from gradcheck._casenet import NetworkLoss, describe_network
-from gradcheck._errors import InputError
+from gradcheck._case.file import Case, load_case, read_description, save_case
+from gradcheck._case.network import NetworkLoss, describe_network
+from gradcheck._core.errors import InputError
 
 
 def make_case(dtype=np.float64, bias="per-unit", layout="in-by-out", loss="softmax-cross-entropy", seed=0):

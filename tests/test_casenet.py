@@ -1,4 +1,4 @@
-"""Tests for gradcheck._casenet: network descriptions and the loss built from them.
+"""Tests for gradcheck._case.network: network descriptions and the loss built from them.
 
 Outside references: each loss is compared with an independent numpy formula
 written here (the textbook definitions, common practice), and its JAX gradient
@@ -16,8 +16,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.differentiate import jacobian
 
-from gradcheck._casenet import (LayerDescription, NetworkDescription, NetworkLoss, describe_network)
-from gradcheck._errors import InputError
+from gradcheck._case.network import (LayerDescription, NetworkDescription, NetworkLoss, describe_network)
+from gradcheck._core.errors import InputError
 
 
 def make_params(net: NetworkDescription, seed: int = 0, scale: float = 0.7) -> dict:

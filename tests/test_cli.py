@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 
 import gradcheck
-from gradcheck._cli import main
+from gradcheck._tools.cli import main
 
 
 def write_case(folder, mistake=None):
@@ -66,7 +66,7 @@ def test_help_on_every_command(capsys, argv):
 
 
 def test_demo_console_script_runs_and_diagnoses():
-    done = subprocess.run([sys.executable, "-m", "gradcheck._cli", "demo"], capture_output=True, text=True,
+    done = subprocess.run([sys.executable, "-m", "gradcheck._tools.cli", "demo"], capture_output=True, text=True,
                           timeout=120)
     assert done.returncode == 0, done.stderr
     first = done.stdout.splitlines()[0]

@@ -11,9 +11,9 @@ import numpy as np
 import pytest
 
 import gradcheck
-from gradcheck._confirm import measure_noise, widen_for_noise
-from gradcheck._numerical import EPS64, Evaluator, central
-from gradcheck._plan import make_plan
+from gradcheck._check.confirm import measure_noise, widen_for_noise
+from gradcheck._references.numerical import EPS64, Evaluator, central
+from gradcheck._check.inputs import make_plan
 
 W = np.array([0.3, -1.2, 2.0, 0.7])
 

@@ -13,8 +13,8 @@ import pytest
 import gradcheck
 
 ROOT = Path(__file__).resolve().parents[1]
-MODULES = sorted(m.name for m in pkgutil.iter_modules(gradcheck.__path__, "gradcheck.")
-                 if m.name != "gradcheck._pytest_plugin")
+MODULES = sorted(m.name for m in pkgutil.walk_packages(gradcheck.__path__, "gradcheck.")
+                 if m.name != "gradcheck._tools.pytest_plugin")
 DOCS = sorted([ROOT / "README.md", *ROOT.glob("docs/*.md")])
 
 

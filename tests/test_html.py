@@ -27,7 +27,7 @@ import pytest  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 
 import gradcheck  # noqa: E402
-from gradcheck._html import ANCHORS, UNCHECKED, error_colour  # noqa: E402
+from gradcheck._report.html import ANCHORS, UNCHECKED, error_colour  # noqa: E402
 
 SVG = "{http://www.w3.org/2000/svg}"
 VERMILION, SAND, TEAL = ANCHORS[-1][1], ANCHORS[1][1], ANCHORS[0][1]

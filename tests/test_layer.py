@@ -1,4 +1,4 @@
-"""Tests for gradcheck._layer (examine_layer) and gradcheck._stress (stress_inputs, conditioning notes).
+"""Tests for gradcheck._api.layer (examine_layer) and gradcheck._layers.stress (stress_inputs, conditioning notes).
 
 Every layer below is written here for these tests (numpy, naive where the issue
 asks for it), with a correct backward and planted mistakes selected by a ``bug``
@@ -26,9 +26,9 @@ import scipy.signal
 import scipy.special
 from scipy.differentiate import jacobian
 
-from gradcheck._errors import InputError
-from gradcheck._layer import examine_layer, input_names
-from gradcheck._stress import stress_inputs
+from gradcheck._core.errors import InputError
+from gradcheck._api.layer import examine_layer, input_names
+from gradcheck._layers.stress import stress_inputs
 
 EPS = 1e-5  # the normalisation layers' epsilon (the common default)
 

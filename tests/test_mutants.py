@@ -1,4 +1,4 @@
-"""Tests for gradcheck._mutants and gradcheck._jaxpr_walk.
+"""Tests for gradcheck._diagnose.mutants and gradcheck._diagnose.program.
 
 Outside reference: ``jax.grad`` (JAX, a general-purpose autodiff library) for the
 unmutated reverse pass of the interpreter, and XLA's own evaluation of the trace for
@@ -19,11 +19,11 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 
-from gradcheck._errors import InputError
-from gradcheck._jaxpr_walk import trace_program
-from gradcheck._mutants import KINDS, Mutant, build_mutants, misfit, rank_mutants
-from gradcheck._mutants import _product_specs, _scale_specs, _transfer_specs
-from gradcheck._tree import flatten, flatten_like
+from gradcheck._core.errors import InputError
+from gradcheck._diagnose.program import trace_program
+from gradcheck._diagnose.mutants import KINDS, Mutant, build_mutants, misfit, rank_mutants
+from gradcheck._diagnose.mutants import _product_specs, _scale_specs, _transfer_specs
+from gradcheck._core.tree import flatten, flatten_like
 
 N = 6  # batch size; not 2, so that 1/N and the 0.5 of a squared error differ
 RNG = np.random.default_rng(20240611)

@@ -7,8 +7,8 @@ import pytest
 from scipy import differentiate
 
 import gradcheck
-from gradcheck._numerical import EPS64, Evaluator, central, complex_step, complex_usable, richardson, steps_for
-from gradcheck._tree import flatten
+from gradcheck._references.numerical import EPS64, Evaluator, central, complex_step, complex_usable, richardson, steps_for
+from gradcheck._core.tree import flatten
 
 
 def squire_trapp(p, xp=np):

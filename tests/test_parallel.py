@@ -1,7 +1,7 @@
-"""Tests for gradcheck._parallel (and the progress bar of gradcheck._progress it drives).
+"""Tests for gradcheck._scale.runners (and the progress bar of gradcheck._scale.progress it drives).
 
 Outside references: the schemes routed through runners are compared bit for bit
-with gradcheck._numerical's own loops, and those with SciPy's
+with gradcheck._references.numerical's own loops, and those with SciPy's
 ``scipy.differentiate.derivative`` on a closed-form loss; the executors under test
 are the standard library's thread and process pools and a local Dask
 distributed cluster. Networks and values are invented for these tests. The
@@ -18,12 +18,12 @@ import numpy as np
 import pytest
 
 import gradcheck
-from gradcheck._errors import InputError
-from gradcheck._numerical import central, complex_step, richardson
-from gradcheck._parallel import (Entries, ExecutorRunner, Move, SerialRunner, _split, central_by, complex_by,
+from gradcheck._core.errors import InputError
+from gradcheck._references.numerical import central, complex_step, richardson
+from gradcheck._scale.runners import (Entries, ExecutorRunner, Move, SerialRunner, _split, central_by, complex_by,
                                  entrywise_references, raw_direction, richardson_by, unit_direction, worker_count)
-from gradcheck._plan import make_plan
-from gradcheck._progress import ProgressBar, open_bar
+from gradcheck._check.inputs import make_plan
+from gradcheck._scale.progress import ProgressBar, open_bar
 
 
 def mlp_loss(p, x, y):

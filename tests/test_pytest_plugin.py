@@ -69,7 +69,7 @@ def test_report_from_a_fixture(checked_in_a_fixture, tmp_path, monkeypatch):
 
 
 def test_something_else_announced():
-    from gradcheck._listeners import announce
+    from gradcheck._report.listeners import announce
 
     assert announce("not a report") == "not a report"  # nothing to write, and no error at teardown
 '''

@@ -9,9 +9,9 @@ import numpy as np
 import pytest
 
 import gradcheck
-from gradcheck._compare import judge
-from gradcheck._numerical import Estimate
-from gradcheck._tree import flatten
+from gradcheck._check.compare import judge
+from gradcheck._references.numerical import Estimate
+from gradcheck._core.tree import flatten
 
 
 def _tanh_loss(p, x):

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 
 from gradcheck import InputError
-from gradcheck._tree import flatten, flatten_like, render_key
+from gradcheck._core.tree import flatten, flatten_like, render_key
 
 Dense = namedtuple("Dense", ["W", "b"])
 A = np.ones((2, 3))

@@ -1,0 +1,1 @@
+"""Conditioning of layer checks: input variants that expose mistakes friendly inputs hide (``stress``)."""
