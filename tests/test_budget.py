@@ -16,7 +16,7 @@ import pytest
 
 import gradcheck
 import gradcheck._scale.budgeted as budget_module
-from gradcheck._scale.budgeted import DEFAULT_BUDGET
+from gradcheck._check.budget import DEFAULT_BUDGET
 from gradcheck._scale.directional import MAX_DIRECTIONS, detectable_norm, miss_probability
 from gradcheck._core.errors import InputError
 

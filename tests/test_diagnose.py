@@ -155,7 +155,7 @@ def test_unreliable_reference_when_every_entry_sits_on_a_kink():
 def test_a_finding_that_blames_nobody_never_heads_the_report():
     # an unreliable reference nearer the loss (a kink in hidden2) must not hide a mistake further back
     from gradcheck import Finding
-    from gradcheck._diagnose.signatures import merge_findings
+    from gradcheck._diagnose.ranking import merge_findings
 
     kink = Finding("unreliable-reference", "hidden2", "hidden2.W", "not judged")
     wrong = Finding("unexplained", "hidden1", "hidden1.W", "differs")

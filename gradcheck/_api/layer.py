@@ -6,9 +6,11 @@ layer is the vector-Jacobian product: for an upstream gradient R shaped like the
 output it returns the gradient of the scalar <forward(inputs), R>. So each trial
 draws R (standard normal, one number per output entry), builds the loss
 ``L(inputs) = sum(forward(*inputs) * R)`` over the differentiated inputs, and
-hands it to the same stages as :func:`gradcheck.examine`: plan, references
-(autodiff through the ``xp`` route or JAX when the forward allows it, the
-complex step, central differences), comparison, diagnosis. A random R weights
+hands it to the one check pipeline :func:`gradcheck.examine` runs
+(:func:`gradcheck._check.run.run_check`): references (autodiff through the ``xp``
+route or JAX when the forward allows it, the complex step, central differences),
+comparison, settling (measured rounding of the backward, measured noise, a second
+reference, the kink test) and the whole diagnosis, mutants included. A random R weights
 every output entry, so a backward right for one upstream pattern (all ones, say)
 and wrong for others cannot hide; ``trials`` independent draws make a
 coincidental pass vanishingly unlikely.
@@ -26,30 +28,21 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
-from .._check.compare import judge
-from .._check.confirm import confirm_failing
-from .._check.inputs import claimed_from, copy_data, make_plan
+from .._check.compare import Judgement
+from .._check.inputs import Plan, copy_data, make_plan
+from .._check.rounding import rounding_notes
+from .._check.run import Claims, Outcome, read_claims, run_check, standard_diagnosis
 from .._core.errors import InputError, describe, input_error
 from .._core.tree import _rebuild, _walk, flatten
-from .._diagnose.signatures import (
-    Evidence,
-    merge_findings,
-    repeat_findings,
-    tensor_findings,
-)
+from .._diagnose.kinds import RankedFinding
+from .._diagnose.ranking import merge_findings
 from .._layers.stress import overlap_notes, resolution_notes, stabiliser_notes
-from .._references.autodiff import accepts_keyword
-from .._references.choose import check_methods, compute_references
+from .._references.autodiff import Traced, accepts_keyword
+from .._references.choose import check_methods
 from .._references.numerical import EPS64
 from .._report.listeners import announce
-from .._report.results import (
-    Finding,
-    ReferenceSummary,
-    Report,
-    TensorResult,
-    build_layers,
-)
-from .examine import _entry_point
+from .._report.results import Finding, ReferenceSummary, Report, TensorResult, build_layers
+from .entry import entry_point
 
 __all__ = ["examine_layer", "input_names"]
 
@@ -206,7 +199,7 @@ def _worse(a: TensorResult, b: TensorResult) -> bool:
     return (not a.ok, ea) > (not b.ok, eb)
 
 
-@_entry_point("examine_layer")
+@entry_point("examine_layer")
 def examine_layer(forward: Callable, backward: Callable, *inputs: Any, upstream: Any = None, wrt: Any = None,
                   trials: int = 3, tolerance: float | None = None, methods: Sequence[str] | str | None = None,
                   seed: int = 0, title: str | None = None) -> Report:
@@ -277,7 +270,7 @@ def examine_layer(forward: Callable, backward: Callable, *inputs: Any, upstream:
         raw = _call(backward, "backward", "the gradients of the inputs", tree, *copy_data(inputs, promote=False))
         return _claimed_tuple(raw, names)
 
-    raw0 = backward_at(draws[0])
+    raw0 = backward_at(draws[0])  # which inputs the backward differentiates
     checked = _which(wrt, names, inputs, raw0)
     data_pos = [i for i in range(len(inputs)) if i not in checked]
 
@@ -289,51 +282,53 @@ def examine_layer(forward: Callable, backward: Callable, *inputs: Any, upstream:
             args[i] = rest[j]
         return args
 
+    def backward_on(R: list[Any]) -> Callable:
+        """The layer's backward at upstream R as a grads(params, *data) callable, so that the pipeline can
+        call it again (repeat check, float64 re-run, nudged inputs) exactly as it calls examine's."""
+        def grads(p: Any, *rest: Any) -> dict[str, Any]:
+            tree = _rebuild(recipe, [np.array(r) if isinstance(r, np.ndarray) else r for r in R])
+            raw = _claimed_tuple(_call(backward, "backward", "the gradients of the inputs", tree,
+                                       *args_of(p, rest)), names)
+            return {names[i]: raw[i] for i in checked}
+        return grads
+
     params = {names[i]: inputs[i] for i in checked}
     data = tuple(inputs[i] for i in data_pos)
+    paths = {names[i] for i in checked}
+
+    def diagnose(plan: Plan, claims: Claims, judgement: Judgement, traced: Traced | None,
+                 order: tuple[str, ...]) -> list[RankedFinding]:
+        return standard_diagnosis(plan, claims, judgement, traced, plan.structure.layer_order, subject="input",
+                                  batch=batch_sizes)
+
     best: dict[str, tuple[TensorResult, list]] = {}
-    evaluations, notes, extra_findings = 2, [], []
-    summaries, first_plan, first_judgement = [], None, None
+    evaluations, notes = 2, []
+    extra_findings: list[RankedFinding] = []  # not about one input: mutants, repeated calls
+    outcomes: list[tuple[Plan, Outcome]] = []
     for t, R in enumerate(draws):
-        raw = raw0 if t == 0 else backward_at(R)
         loss = _pairing(forward, args_of, R, use_xp)
         plan = make_plan(loss, params, data, layers=lambda p: p.split(".")[0], seed=seed + t)
         if not plan.deterministic:
             return _nondeterministic(names, inputs, checked, abs(plan.f0 - plan.second_value), title)
-        claimed, dtypes, _ = claimed_from(plan, {names[i]: raw[i] for i in checked}, "backward")
-        estimates, unavailable, used, _ = compute_references(plan, chosen_methods, seed + t)
-        judgement = judge(plan.structure, claimed, dtypes, estimates, unavailable, tolerance)
-        if len(estimates) == 1 and not all(r.ok for r in judgement.tensors):
-            estimates, more, why = confirm_failing(plan, judgement, estimates, seed + t)
-            used += more
-            unavailable = {**unavailable, **why}
-            judgement = judge(plan.structure, claimed, dtypes, estimates, unavailable, tolerance)
-        evaluations += plan.evaluations + used
-        if t == 0:
-            first_plan, first_judgement = plan, judgement
-            again = backward_at(R)
-            repeat, _, _ = claimed_from(plan, {names[i]: again[i] for i in checked}, "backward")
-            extra_findings = repeat_findings(plan, claimed, repeat, judgement)
-        summaries.append(judgement.summary)
-        evidence = Evidence(plan.structure, tuple(claimed), plan.base, judgement, batch_sizes,
-                            plan.structure.layer_order)
-        for k, result in enumerate(judgement.tensors):
+        grads = backward_on(R)
+        claims = read_claims(plan, grads, "backward")
+        outcome = run_check(plan, claims, methods=chosen_methods, tolerance=tolerance, seed=seed + t,
+                            diagnose=diagnose)
+        outcomes.append((plan, outcome))
+        evaluations += plan.evaluations + outcome.evaluations
+        notes.extend(n for n in outcome.notes + tuple(rounding_notes(outcome.unallowed, outcome.judgement,
+                                                                    claims.dtypes, grads, outcome.rounding))
+                     if not any(n[:40] == old[:40] for old in notes))
+        if not extra_findings:
+            extra_findings = [f for f in outcome.findings if f.finding.where not in paths or f.finding.kind == "accumulating"]
+        for result in outcome.judgement.tensors:
             if result.path in best and not _worse(result, best[result.path][0]):
                 continue
-            found = []
-            if result.checked and result.unreliable == result.checked:
-                found = [(Finding("unreliable-reference", result.layer, result.path,
-                                  f"the references disagree with each other at every entry of {result.path} (a kink "
-                                  "or a noisy forward), so its claimed values could not be judged; check it at other "
-                                  "inputs", None), 1.0, 3)]
-            elif not result.ok:
-                found = [(f, m, 2) for f, m in tensor_findings(evidence, k)[:3]] or [(Finding(
-                    "unexplained", result.layer, result.path,
-                    f"the claimed gradient differs from the reference by up to {result.error:.3g} (relative) at "
-                    f"entry {result.worst_index}, with no simple pattern; check this input's formula in the "
-                    "backward pass", None), result.error, 3)]
-            best[result.path] = (result, found)
+            best[result.path] = (result, [f for f in outcome.findings
+                                          if f.finding.where == result.path and f.finding.kind != "accumulating"])
+    first_plan, first = outcomes[0]
     structure = first_plan.structure
+    summaries = [o.judgement.summary for _, o in outcomes]
     tensors = tuple(best[p][0] for p in structure.paths)
     findings = [f for p in structure.paths for f in best[p][1]] + extra_findings
     ok = all(r.ok for r in tensors) and not findings
@@ -354,7 +349,7 @@ def examine_layer(forward: Callable, backward: Callable, *inputs: Any, upstream:
                   overlap_notes(run, probe_args, names, checked, base_out, seed)):
         notes.extend(probe[0])
         evaluations += probe[1]
-    notes.extend(resolution_notes(first_judgement, structure))
+    notes.extend(resolution_notes(first.judgement, structure))
     methods_used = tuple(dict.fromkeys(m for s in summaries for m in s.methods))
     summary = ReferenceSummary(
         summaries[0].primary, methods_used,

@@ -146,12 +146,11 @@ def make_plan(loss: Callable, params: Any, data: Sequence[Any], layers: LayerSpe
                 loss_eps, ev.count, dict(kwargs or {}), tuple(data))
 
 
-def claimed_from(plan: Plan, grads: Any, what: str = "grads") -> tuple[list[np.ndarray], list[np.dtype], Any]:
+def claimed_from(plan: Plan, grads: Any, what: str = "grads") -> tuple[list[np.ndarray], list[np.dtype]]:
     """The claimed gradients as float64 arrays (plus their dtypes), from a pytree or a callable.
 
     A callable is called on fresh copies of the params (in the caller's dtypes) and
-    of the data, so it cannot disturb the check or the caller. Returns the arrays,
-    their dtypes, and the raw value the callable returned (for the repeat check).
+    of the data, so it cannot disturb the check or the caller. Returns the arrays and their dtypes.
     """
     if grads is None:
         raise input_error(what, "the claimed gradients (a pytree like params, or a callable)", "None",
@@ -179,4 +178,4 @@ def claimed_from(plan: Plan, grads: Any, what: str = "grads") -> tuple[list[np.n
         if a.dtype.kind not in "fiu" or a.dtype == bool:
             raise input_error(f"{what} {t.path}", "real numbers", f"dtype {a.dtype}",
                               "Return float arrays of the parameter's shape.")
-    return [np.array(a, dtype=np.float64) for a in arrays], dtypes, raw
+    return [np.array(a, dtype=np.float64) for a in arrays], dtypes

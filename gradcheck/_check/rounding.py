@@ -159,7 +159,10 @@ def _float64_allowance(plan: Plan, grads: Any, claimed: Sequence[np.ndarray], fa
         if isinstance(run, str):
             return run
         for k in failing:
-            spread[k] = np.maximum(spread[k], np.nan_to_num(np.abs(run[k] - claimed[k]), nan=0.0))
+            with np.errstate(invalid="ignore"):
+                moved = np.abs(run[k] - claimed[k])
+            # a non-finite claim or run measures no rounding (it is reported as non-finite instead)
+            spread[k] = np.maximum(spread[k], np.where(np.isfinite(moved), moved, 0.0))
     return [NUDGE_SAFETY * s if k in failing else np.zeros_like(s) for k, s in enumerate(spread)]
 
 

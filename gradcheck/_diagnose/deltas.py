@@ -19,14 +19,16 @@ from typing import Any, Callable
 
 import numpy as np
 
-from .._check.compare import judge
+from .._check.compare import Judgement
 from .._check.inputs import Plan, copy_data
+from .._check.run import Claims, run_check
 from .._core.errors import input_error
 from .._core.tree import flatten, flatten_like
-from .._references.autodiff import accepts_keyword, autodiff_estimate, trace
-from .._references.numerical import central
+from .._references.autodiff import Traced, accepts_keyword
+from .._references.numerical import Evaluator
 from .._report.results import Finding, TensorResult
 from .delta_factors import factor_findings
+from .kinds import EvidenceTier, RankedFinding
 from .signatures import Evidence, tensor_findings
 
 __all__ = ["DeltaCheck", "check_deltas", "record_probes"]
@@ -37,12 +39,13 @@ class DeltaCheck:
     """Results of the delta comparison: per-probe rows, findings and evaluations spent."""
 
     rows: tuple[TensorResult, ...]
-    findings: tuple[tuple[Finding, float, int], ...]
+    findings: tuple[RankedFinding, ...]
     evaluations: int
 
 
-def record_probes(plan: Plan) -> dict[str, np.ndarray]:
-    """Run the loss once with a recording probe; return probe name -> value, in forward order."""
+def record_probes(plan: Plan) -> tuple[dict[str, np.ndarray], int]:
+    """Run the loss once with a recording probe; return probe name -> value, in forward order, and the
+    evaluations spent (one: every loss call goes through an Evaluator, so the report counts it)."""
     seen: dict[str, np.ndarray] = {}
 
     def recorder(name: str, value: Any) -> Any:
@@ -52,9 +55,9 @@ def record_probes(plan: Plan) -> dict[str, np.ndarray]:
         seen[name] = np.array(value, dtype=np.float64, copy=True)
         return value
 
-    tree = plan.structure.rebuild([b.copy() for b in plan.base])
-    plan.loss(tree, *copy_data(plan.data), **{**plan.kwargs, "probe": recorder})
-    return seen
+    ev = Evaluator(plan.loss, plan.structure, plan.base, copy_data(plan.data), {**plan.kwargs, "probe": recorder})
+    ev()
+    return seen, ev.count
 
 
 def _offset_loss(plan: Plan, names: list[str]) -> Callable:
@@ -74,13 +77,13 @@ def _offset_loss(plan: Plan, names: list[str]) -> Callable:
     return loss
 
 
-def check_deltas(plan: Plan, deltas: Any, tolerance: float | None, layer_of: Callable[[str], str]
-                 ) -> DeltaCheck:
+def check_deltas(plan: Plan, deltas: Any, tolerance: float | None, layer_of: Callable[[str], str],
+                 seed: int = 0) -> DeltaCheck:
     """Compare claimed deltas with reference deltas at the probes; diagnose the first wrong one."""
     if not accepts_keyword(plan.loss, "probe"):
         raise input_error("deltas", "a loss that takes a keyword `probe`", "a loss without one",
                           "Add `probe=lambda name, v: v` to the loss and wrap values: z = probe('hidden.z', z).")
-    recorded = record_probes(plan)
+    recorded, recording = record_probes(plan)
     if callable(deltas):
         params_copy = plan.structure.rebuild([np.array(o, copy=True) for o in plan.originals])
         try:
@@ -107,40 +110,41 @@ def check_deltas(plan: Plan, deltas: Any, tolerance: float | None, layer_of: Cal
               else np.dtype(np.float64) for n in recorded]
     loss = _offset_loss(plan, list(recorded))
     sub = Plan(loss, structure, tuple(leaves), tuple(leaves), (), plan.f0, True, plan.f0, plan.loss_eps, 0, {})
-    estimates, unavailable, evaluations = [], {}, 0
-    traced = trace(loss, structure, leaves, ())
-    if not isinstance(traced, str):
-        est = autodiff_estimate(traced, leaves, plan.f0)
-        evaluations += 1
-        if not isinstance(est, str):
-            estimates.append(est)
-    ev = sub.evaluator()
-    estimates.append(central(ev, plan.f0, eps=plan.loss_eps))
-    evaluations += ev.count
-    judgement = judge(structure, claimed, dtypes, estimates, unavailable, tolerance)
-    rows = tuple(t for t, n in zip(judgement.tensors, recorded) if n in deltas)
     names = list(recorded)
-    failing = [k for k, n in enumerate(names) if n in deltas and not judgement.tensors[k].ok]
-    findings: list[tuple[Finding, float, int]] = []
-    if failing:
+
+    def diagnose(sub: Plan, claims: Claims, judgement: Judgement, traced: Traced | None,
+                 order: tuple[str, ...]) -> list[RankedFinding]:
+        """The first wrong delta counting from the loss, and what its derivative factor says."""
+        failing = [k for k, n in enumerate(names) if n in deltas and not judgement.tensors[k].ok]
+        if not failing:
+            return []
         origin = max(failing)  # forward order: the last wrong delta is the one nearest the loss
-        name = names[origin]
+        name, t = names[origin], judgement.tensors[origin]
         layer = layer_of(name)
-        t = judgement.tensors[origin]
-        if name.endswith(".z"):
+        findings: list[RankedFinding] = []
+        if name.endswith(".z") and name[:-2] + ".a" in recorded:
             out_name = name[:-2] + ".a"
-            if out_name in recorded:
-                findings += factor_findings(name, layer, claimed[origin], recorded[name], recorded[out_name],
-                                             judgement.primary.values[names.index(out_name)],
-                                             judgement.primary.values[origin], t.tolerance)
+            findings += factor_findings(name, layer, claimed[origin], recorded[name], recorded[out_name],
+                                        judgement.primary.values[names.index(out_name)],
+                                        judgement.primary.values[origin], t.tolerance)
         if not findings:
             batch = tuple(int(d.shape[0]) for d in plan.data if isinstance(d, np.ndarray) and d.ndim >= 1)
             evidence = Evidence(structure, tuple(claimed), tuple(leaves), judgement, batch, tuple(names))
-            findings += [(f, m, 1) for f, m in tensor_findings(evidence, origin)[:1]]
+            findings += [RankedFinding(finding=f, misfit=m, evidence=EvidenceTier.MUTANT)
+                         for f, m in tensor_findings(evidence, origin)[:1]]
         if not findings:
             findings.append((Finding("unexplained", layer, name,
                                      f"the claimed delta at {name} is the first wrong one counting from the loss "
                                      f"(relative error {t.error:.3g} at {t.worst_index}); the mistake is in the "
                                      "backward step that computes it; the deltas before it inherit the error", None),
-                             t.error, 1))
+                             t.error, EvidenceTier.MUTANT))
+        return findings
+
+    # the same pipeline as the parameters' check: references, comparison, settling (noise, a second
+    # reference, kinks), then the delta diagnosis above
+    outcome = run_check(sub, Claims(values=claimed, dtypes=dtypes), tolerance=tolerance, seed=seed,
+                        diagnose=diagnose)
+    rows = tuple(t for t, n in zip(outcome.judgement.tensors, recorded) if n in deltas)
+    findings = list(outcome.findings)
+    evaluations = recording + outcome.evaluations
     return DeltaCheck(rows, tuple(findings), evaluations)

@@ -1,4 +1,4 @@
-"""Diagnosis: whole-tensor signatures (tier 1), tier-3 mutants as findings, repeated calls.
+"""Diagnosis by whole-tensor signatures, and mutants of the traced backward turned into findings.
 
 Each signature is a hypothesis "claimed = T(reference)" for a simple transform T
 (negation, a constant factor, a transpose, another tensor's reference, reference
@@ -20,12 +20,13 @@ from .._check.compare import Judgement, relative_error
 from .._core.errors import InputError
 from .._core.tree import Structure
 from .._report.results import Finding
+from .kinds import EvidenceTier, RankedFinding
 
 if TYPE_CHECKING:
     from .._check.inputs import Plan
     from .._references.autodiff import Traced
 
-__all__ = ["Evidence", "tensor_findings", "merge_findings", "scale_cause", "mutant_findings", "repeat_findings"]
+__all__ = ["Evidence", "tensor_findings", "scale_cause", "mutant_findings", "batch_sizes"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -136,45 +137,8 @@ def tensor_findings(evidence: Evidence, k: int) -> list[tuple[Finding, float]]:
     return sorted(out, key=lambda fm: fm[1])
 
 
-def merge_findings(findings: list[tuple[Finding, float, int]], layer_order: Sequence[str]) -> tuple[Finding, ...]:
-    """Rank findings and fold repeats of one mistake across tensors into one finding.
-
-    Args:
-        findings: (finding, misfit, tier) triples; lower tier means more specific
-            evidence (mutants and deltas beat whole-tensor signatures).
-        layer_order: layers input to output. Findings in the layer nearest the loss come
-            first, since in a backprop chain the upstream layers inherit its error (a
-            width-one chain makes an inherited error look like a clean "scaled" upstream);
-            within a layer, specific kinds beat generic ones, then lower tiers, then better fits.
-            ``unreliable-reference`` blames nobody, so it comes after every finding that does.
-    """
-    rank = {name: i for i, name in enumerate(layer_order)}
-    generic = {"unexplained", "mismatch"}
-
-    def key(item):
-        f, misfit, tier = item
-        return (f.kind == "unreliable-reference", -rank.get(f.layer, -1), f.kind in generic, tier, misfit)
-
-    merged: list[Finding] = []
-    seen: dict[tuple, int] = {}
-    also: dict[int, list[str]] = {}
-    for f, _, _ in sorted(findings, key=key):
-        sig = (f.kind, None if f.factor is None else round(f.factor, 6))
-        if f.kind in ("scaled", "sign-flip", "weight-decay-mismatch") and sig in seen:
-            also.setdefault(seen[sig], [])
-            if f.where != merged[seen[sig]].where and f.where not in also[seen[sig]]:
-                also[seen[sig]].append(f.where)
-            continue
-        seen.setdefault(sig, len(merged))
-        merged.append(f)
-    for i, wheres in also.items():
-        f = merged[i]
-        merged[i] = Finding(f.kind, f.layer, f.where, f"{f.detail} (also in {', '.join(wheres)})", f.factor)
-    return tuple(merged)
-
-
 def mutant_findings(plan: Plan, traced: Traced, claimed: list[np.ndarray], judgement: Judgement
-                     ) -> list[tuple[Finding, float, int]]:
+                     ) -> list[RankedFinding]:
     """Tier 3: mutants of the traced forward's backward pass that reproduce every claimed tensor."""
     from .._core.tree import _walk
     from .mutants import build_mutants, rank_mutants
@@ -202,27 +166,9 @@ def mutant_findings(plan: Plan, traced: Traced, claimed: list[np.ndarray], judge
         detail = mutant.detail
         if mutant.kind == "scaled" and mutant.factor:
             detail += f" Likely cause: {scale_cause(mutant.factor, batch_sizes(plan.data))}."
-        out.append((Finding(mutant.kind, mutant.layer, mutant.where, detail, mutant.factor), misfit, 1))
+        out.append(RankedFinding(finding=Finding(mutant.kind, mutant.layer, mutant.where, detail, mutant.factor),
+                                 misfit=misfit, evidence=EvidenceTier.MUTANT))
     return out[:3]
-
-
-def repeat_findings(plan: Plan, first: list[np.ndarray], second: list[np.ndarray],
-                     judgement: Judgement) -> list[tuple[Finding, float, int]]:
-    """Compare two calls of the ``grads`` callable on the same input: buffers that are never cleared show up here."""
-    out = []
-    for k, t in enumerate(plan.structure.tensors):
-        a, b = first[k], second[k]
-        if np.array_equal(a, b, equal_nan=True):
-            continue
-        if np.allclose(b, 2 * a, rtol=1e-9, atol=0) and np.any(a != 0):
-            detail = ("a second call of the grads callable returned twice the first: gradient buffers are "
-                      "accumulated (+=) and never reset; zero them at the start of every backward pass")
-            out.append((Finding("accumulating", t.layer, t.path, detail, 2.0), 0.0, 0))
-        else:
-            detail = ("two calls of the grads callable on the same input returned different values; it keeps "
-                      "state between calls or uses unseeded randomness")
-            out.append((Finding("accumulating", t.layer, t.path, detail, None), 1.0, 1))
-    return out
 
 
 def batch_sizes(data: tuple) -> tuple[int, ...]:

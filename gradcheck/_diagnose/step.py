@@ -19,6 +19,7 @@ from .._check.inputs import Plan, copy_data
 from .._core.errors import input_error
 from .._core.tree import flatten_like
 from .._report.results import Finding
+from .kinds import EvidenceTier, RankedFinding
 
 __all__ = ["StepCheck", "check_step"]
 
@@ -28,7 +29,7 @@ class StepCheck:
     """Learning rates per tensor, findings, and the loss evaluations spent."""
 
     rates: dict[str, float]
-    findings: tuple[tuple[Finding, float, int], ...]
+    findings: tuple[RankedFinding, ...]
     evaluations: int
 
 
@@ -45,7 +46,7 @@ def check_step(plan: Plan, update: Callable, reference: Sequence[np.ndarray]) ->
                           "Fix the error shown above in the update function.") from exc
     new_leaves = [np.asarray(a, dtype=np.float64) for a in flatten_like(plan.structure, new, "step result")]
     rates: dict[str, float] = {}
-    findings: list[tuple[Finding, float, int]] = []
+    findings: list[RankedFinding] = []
     for t, old, g, n, d in zip(plan.structure.tensors, plan.base, reference, new_leaves, dtypes):
         move = n - np.asarray(np.asarray(old, dtype=d), dtype=np.float64)
         gg = float(np.sum(g * g))
@@ -60,18 +61,18 @@ def check_step(plan: Plan, update: Callable, reference: Sequence[np.ndarray]) ->
             findings.append((Finding("unexplained", t.layer, t.path,
                                      f"the update of {t.path} is not a multiple of its gradient (the part not parallel "
                                      f"to it is {rest / size:.2g} of the step); check which gradient the update uses",
-                                     lr), rest / size, 1))
+                                     lr), rest / size, EvidenceTier.MUTANT))
         elif lr < 0:
             findings.append((Finding("ascent-step", t.layer, t.path,
                                      f"the update moves {t.path} up the gradient (effective learning rate {lr:.4g}); "
-                                     "subtract the gradient: w = w - lr * g", lr), 0.0, 0))
+                                     "subtract the gradient: w = w - lr * g", lr), 0.0, EvidenceTier.CLAIMED_DELTAS))
     evaluations = 0
     if not findings and rates:
         evaluations, raised = _small_step_raises_loss(plan, new_leaves)
         if raised:
             findings.append((Finding("ascent-step", None, "step",
                                      "a small step in the direction of the update raises the loss; the update's "
-                                     "sign is flipped", None), 0.0, 0))
+                                     "sign is flipped", None), 0.0, EvidenceTier.CLAIMED_DELTAS))
     return StepCheck(rates, tuple(findings), evaluations)
 
 

@@ -30,7 +30,7 @@ class Finding:
     """One diagnosed problem.
 
     Attributes:
-        kind: short id, e.g. ``mismatch``, ``non-finite``, ``sign-flip``.
+        kind: a registered id (``gradcheck._diagnose.kinds``), e.g. ``non-finite``, ``sign-flip``.
         layer: the layer where the mistake most likely starts.
         where: the tensor path or probe name the evidence comes from.
         detail: one plain sentence saying what the code probably does and what it should do.
@@ -42,6 +42,13 @@ class Finding:
     where: str
     detail: str
     factor: float | None = None
+
+    def __post_init__(self) -> None:
+        from .._diagnose.kinds import KINDS
+
+        if self.kind not in KINDS:
+            raise ValueError(f"Finding kind: expected one of the registered kinds {sorted(KINDS)}, got "
+                             f"{self.kind!r}. Register it in gradcheck/_diagnose/kinds.py.")
 
     def sentence(self) -> str:
         return f"{self.where}: {self.detail}"

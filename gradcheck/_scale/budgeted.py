@@ -35,6 +35,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
+from .._check.budget import FULL_CHECK_LIMIT, default_budget, room_for_full_check
 from .._check.compare import (
     FLOOR_FRACTION,
     Judgement,
@@ -43,7 +44,7 @@ from .._check.compare import (
     relative_error,
     tolerance_for,
 )
-from .._core.errors import describe, input_error
+from .._core.errors import input_error
 from .._references.autodiff import autodiff_estimate
 from .._references.numerical import EPS64, Estimate
 from .._report.results import ReferenceSummary, TensorResult
@@ -61,36 +62,7 @@ from .directional import (
 from .progress import open_bar
 from .runners import ExecutorRunner, SerialRunner
 
-__all__ = ["check_within_budget", "default_budget", "room_for_full_check", "full_check_note", "DEFAULT_BUDGET"]
-
-DEFAULT_BUDGET = 1000
-"""Loss evaluations for a network above ``FULL_CHECK_LIMIT`` parameters when no budget is given."""
-
-def default_budget(plan: Any) -> int:
-    """:data:`DEFAULT_BUDGET`, or more when the network has so many tensors that four tests each need more."""
-    sizes = [t.size for t in plan.structure.tensors if t.size > 0]
-    return max(DEFAULT_BUDGET, plan.evaluations + 1 + 8 * len(sizes) + _localisation_cost(max(sizes, default=1)))
-
-
-def full_check_note(cap: int, size: int) -> str:
-    """The report's note when a budget covers the entry-by-entry check."""
-    return (f"the budget of {cap:,} loss evaluations covers the entry-by-entry check, so all {size:,} entries were "
-            "checked one by one.")
-
-
-def room_for_full_check(plan: Any, traced: Any, budget: int | None) -> int | None:
-    """Validate the budget; return the evaluations left for the entry-by-entry check when it fits, else None."""
-    from .batched import MAX_BATCH
-
-    if budget is not None and (isinstance(budget, bool) or not isinstance(budget, (int, np.integer)) or budget < 1):
-        raise input_error("budget", "a positive whole number of loss evaluations", describe(budget),
-                          "Pass e.g. budget=500, or leave it out.")
-    cap = default_budget(plan) if budget is None else int(budget)
-    avail = cap - plan.evaluations
-    if avail >= 2 * plan.structure.size + (2 + MAX_BATCH if traced is not None else 0):
-        return avail
-    return None
-
+__all__ = ["check_within_budget"]
 
 def check_within_budget(plan: Any, claimed: list, dtypes: list, traced: Any, budget: int | None = None,
                         executor: Any = None, progress: bool | None = None, seed: int = 0,
@@ -101,8 +73,6 @@ def check_within_budget(plan: Any, claimed: list, dtypes: list, traced: Any, bud
     the report saying what was checked and what a pass means. (A budget that covers the entry-by-entry
     check never gets here: ``examine`` asks :func:`room_for_full_check` first and runs that check.)
     """
-    from .._api.examine import FULL_CHECK_LIMIT
-
     tensors = plan.structure.tensors
     room_for_full_check(plan, traced, budget)  # validates the budget
     cap = default_budget(plan) if budget is None else int(budget)
