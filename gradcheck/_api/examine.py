@@ -22,20 +22,17 @@ from .._diagnose.ranking import merge_findings
 from .._references.choose import METHODS, check_methods, compute_references
 from .._references.numerical import EPS64
 from .._report.listeners import announce
-from .._report.results import Finding, ReferenceSummary, Report, TensorResult, build_layers
+from .._report.results import Report, TensorResult, build_layers, nondeterministic_report
 from .entry import entry_point
 
 __all__ = ["examine", "assert_backprop", "reference", "METHODS"]
 
 
 def _nondeterministic(plan: Plan, title: str) -> Report:
-    finding = Finding("nondeterministic-loss", None, "loss",
-                      f"the loss gave {plan.f0!r} and then {plan.second_value!r} for the same params; fix the random "
-                      "seed (or pass the dropout mask as data) so that every evaluation sees the same randomness")
-    tensors = tuple(TensorResult(t.path, t.layer, t.shape, float("nan"), (), 0, float("nan"), float("nan"), False,
-                                 float("nan"), 0, t.size) for t in plan.structure.tensors)
-    return Report(False, tensors, build_layers(tensors, plan.structure.layer_order), (finding,), plan.evaluations,
-                  ReferenceSummary("none", (), {}, {"all": "the loss is not deterministic"}), title=title)
+    return nondeterministic_report(
+        plan.structure, "loss", f"the loss gave {plan.f0!r} and then {plan.second_value!r} for the same params; fix "
+        "the random seed (or pass the dropout mask as data) so that every evaluation sees the same randomness",
+        plan.evaluations, "the loss is not deterministic", title)
 
 
 @entry_point("examine")

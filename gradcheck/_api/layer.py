@@ -41,7 +41,7 @@ from .._references.autodiff import Traced, accepts_keyword
 from .._references.choose import check_methods
 from .._references.numerical import EPS64
 from .._report.listeners import announce
-from .._report.results import Finding, ReferenceSummary, Report, TensorResult, build_layers
+from .._report.results import ReferenceSummary, Report, TensorResult, build_layers, nondeterministic_report
 from .entry import entry_point
 
 __all__ = ["examine_layer", "input_names"]
@@ -134,26 +134,22 @@ def _pairing(forward: Callable, args_of: Callable, R: list[Any], use_xp: bool) -
                 total = total + xp.sum(o * r)
         return total
 
-    if use_xp:
-        def loss(params, *rest, xp=np):
-            return inner(forward(*args_of(params, rest), xp=xp), xp)
-    else:
-        def loss(params, *rest):
-            return inner(forward(*args_of(params, rest)), np)
-    return loss
+    def with_xp(params: Any, *rest: Any, xp: Any = np) -> Any:
+        return inner(forward(*args_of(params, rest), xp=xp), xp)
+
+    def numpy_only(params: Any, *rest: Any) -> Any:
+        return inner(forward(*args_of(params, rest)), np)
+
+    return with_xp if use_xp else numpy_only
 
 
 def _nondeterministic(names: list[str], inputs: tuple, checked: list[int], gap: float, title: str) -> Report:
     structure, _ = flatten({names[i]: inputs[i] for i in checked}, layers=lambda p: p.split(".")[0])
-    finding = Finding("nondeterministic-loss", None, "forward",
-                      f"two calls of forward on the same inputs differ (by up to {gap:.3g}); a layer with "
-                      "randomness in training mode (dropout) must be checked with it fixed: seed its generator "
-                      "inside the forward, or pass the mask as an input and return None for it from backward")
-    nan = float("nan")
-    tensors = tuple(TensorResult(t.path, t.layer, t.shape, nan, (), 0, nan, nan, False, nan, 0, t.size)
-                    for t in structure.tensors)
-    return announce(Report(False, tensors, build_layers(tensors, structure.layer_order), (finding,), 2,
-                           ReferenceSummary("none", (), {}, {"all": "the forward is not deterministic"}), title=title))
+    return announce(nondeterministic_report(
+        structure, "forward", f"two calls of forward on the same inputs differ (by up to {gap:.3g}); a layer with "
+        "randomness in training mode (dropout) must be checked with it fixed: seed its generator inside the forward, "
+        "or pass the mask as an input and return None for it from backward", 2, "the forward is not deterministic",
+        title))
 
 
 def _which(wrt: Any, names: list[str], inputs: tuple, raw: Sequence[Any]) -> list[int]:
@@ -238,15 +234,7 @@ def examine_layer(forward: Callable, backward: Callable, *inputs: Any, upstream:
         (True, ['x', 'a', 'c'])
     """
     chosen_methods = check_methods(methods)
-    if not callable(forward) or not callable(backward):
-        bad = "forward" if not callable(forward) else "backward"
-        raise input_error(bad, "a callable", describe(forward if bad == "forward" else backward),
-                          "Pass the functions themselves: examine_layer(forward, backward, *inputs).")
-    if not inputs:
-        raise input_error("inputs", "the layer's inputs after forward and backward", "none",
-                          "Call examine_layer(forward, backward, x, w, b).")
-    if isinstance(trials, bool) or not isinstance(trials, int) or trials < 1:
-        raise input_error("trials", "a positive integer", repr(trials), "Pass e.g. trials=3.")
+    _check_arguments(forward, backward, inputs, trials)
     names = input_names(forward, len(inputs))
     name = getattr(forward, "__name__", "")
     title = title or (f"layer {name}" if name.isidentifier() else "layer check")
@@ -255,13 +243,10 @@ def examine_layer(forward: Callable, backward: Callable, *inputs: Any, upstream:
     expected_out = "an output for the given inputs"
     out0 = _call(fwd, "forward", expected_out, *copy_data(inputs, promote=False))
     out1 = _call(fwd, "forward", expected_out, *copy_data(inputs, promote=False))
-    _, l0 = _leaves(out0)
-    _, l1 = _leaves(out1)
-    gaps = [float(np.max(np.abs(np.asarray(a, float) - np.asarray(b, float)), initial=0.0))
-            for a, b in zip(l0, l1) if _is_float(a) and np.shape(a) == np.shape(b)]
-    if len(l0) != len(l1) or any(g != 0 or math.isnan(g) for g in gaps):
+    l0, gap = _leaves(out0)[1], _gap(out0, out1)
+    if gap != 0:
         candidates = [i for i, v in enumerate(inputs) if _float_input(v)]
-        return _nondeterministic(names, inputs, candidates, max(gaps, default=math.nan), title)
+        return _nondeterministic(names, inputs, candidates, gap, title)
     recipe, draws = _upstreams(out0, upstream, trials, seed)
     batch_sizes = tuple(int(np.shape(v)[0]) for v in inputs if isinstance(v, np.ndarray) and np.ndim(v) >= 1)
 
@@ -294,16 +279,13 @@ def examine_layer(forward: Callable, backward: Callable, *inputs: Any, upstream:
 
     params = {names[i]: inputs[i] for i in checked}
     data = tuple(inputs[i] for i in data_pos)
-    paths = {names[i] for i in checked}
 
     def diagnose(plan: Plan, claims: Claims, judgement: Judgement, traced: Traced | None,
                  order: tuple[str, ...]) -> list[RankedFinding]:
         return standard_diagnosis(plan, claims, judgement, traced, plan.structure.layer_order, subject="input",
                                   batch=batch_sizes)
 
-    best: dict[str, tuple[TensorResult, list]] = {}
-    evaluations, notes = 2, []
-    extra_findings: list[RankedFinding] = []  # not about one input: mutants, repeated calls
+    evaluations, notes = 2, list[str]()
     outcomes: list[tuple[Plan, Outcome]] = []
     for t, R in enumerate(draws):
         loss = _pairing(forward, args_of, R, use_xp)
@@ -319,18 +301,9 @@ def examine_layer(forward: Callable, backward: Callable, *inputs: Any, upstream:
         notes.extend(n for n in outcome.notes + tuple(rounding_notes(outcome.unallowed, outcome.judgement,
                                                                     claims.dtypes, grads, outcome.rounding))
                      if not any(n[:40] == old[:40] for old in notes))
-        if not extra_findings:
-            extra_findings = [f for f in outcome.findings if f.finding.where not in paths or f.finding.kind == "accumulating"]
-        for result in outcome.judgement.tensors:
-            if result.path in best and not _worse(result, best[result.path][0]):
-                continue
-            best[result.path] = (result, [f for f in outcome.findings
-                                          if f.finding.where == result.path and f.finding.kind != "accumulating"])
     first_plan, first = outcomes[0]
     structure = first_plan.structure
-    summaries = [o.judgement.summary for _, o in outcomes]
-    tensors = tuple(best[p][0] for p in structure.paths)
-    findings = [f for p in structure.paths for f in best[p][1]] + extra_findings
+    tensors, findings = _worst_trials([o for _, o in outcomes], structure.paths)
     ok = all(r.ok for r in tensors) and not findings
     ranked = merge_findings(findings, structure.layer_order) if not ok else ()
     notes.append(f"each input checked against {len(draws)} " + ("given upstream gradient" if upstream is not None
@@ -350,11 +323,55 @@ def examine_layer(forward: Callable, backward: Callable, *inputs: Any, upstream:
         notes.extend(probe[0])
         evaluations += probe[1]
     notes.extend(resolution_notes(first.judgement, structure))
-    methods_used = tuple(dict.fromkeys(m for s in summaries for m in s.methods))
-    summary = ReferenceSummary(
-        summaries[0].primary, methods_used,
-        {m: max(s.agreement.get(m, 0.0) for s in summaries) for m in methods_used if any(m in s.agreement
-                                                                                          for s in summaries)},
-        {k: v for s in summaries for k, v in s.unavailable.items()}, max(s.unreliable for s in summaries))
+    summary = _combined_summary([o.judgement.summary for _, o in outcomes])
     return announce(Report(ok, tensors, build_layers(tensors, structure.layer_order), ranked, evaluations,
                            summary, notes=tuple(notes), title=title))
+
+
+def _check_arguments(forward: Any, backward: Any, inputs: tuple, trials: Any) -> None:
+    if not callable(forward) or not callable(backward):
+        bad = "forward" if not callable(forward) else "backward"
+        raise input_error(bad, "a callable", describe(forward if bad == "forward" else backward),
+                          "Pass the functions themselves: examine_layer(forward, backward, *inputs).")
+    if not inputs:
+        raise input_error("inputs", "the layer's inputs after forward and backward", "none",
+                          "Call examine_layer(forward, backward, x, w, b).")
+    if isinstance(trials, bool) or not isinstance(trials, int) or trials < 1:
+        raise input_error("trials", "a positive integer", repr(trials), "Pass e.g. trials=3.")
+
+
+def _gap(out0: Any, out1: Any) -> float:
+    """How far two calls of the forward on the same inputs differ (0 for a deterministic forward)."""
+    l0, l1 = _leaves(out0)[1], _leaves(out1)[1]
+    gaps = [float(np.max(np.abs(np.asarray(a, float) - np.asarray(b, float)), initial=0.0))
+            for a, b in zip(l0, l1) if _is_float(a) and np.shape(a) == np.shape(b)]
+    if len(l0) != len(l1):
+        return math.nan
+    return next((g for g in gaps if g != 0 or math.isnan(g)), 0.0)
+
+
+def _worst_trials(outcomes: Sequence[Outcome], paths: Sequence[str]
+                  ) -> tuple[tuple[TensorResult, ...], list[RankedFinding]]:
+    """Per input, the result and findings of its worst trial; findings about no single input (mutants,
+    repeated calls) from the first trial that has any."""
+    best: dict[str, tuple[TensorResult, list[RankedFinding]]] = {}
+    shared: list[RankedFinding] = []
+    for outcome in outcomes:
+        if not shared:
+            shared = [f for f in outcome.findings if f.finding.where not in paths or f.finding.kind == "accumulating"]
+        for result in outcome.judgement.tensors:
+            if result.path in best and not _worse(result, best[result.path][0]):
+                continue
+            best[result.path] = (result, [f for f in outcome.findings
+                                          if f.finding.where == result.path and f.finding.kind != "accumulating"])
+    return tuple(best[p][0] for p in paths), [f for p in paths for f in best[p][1]] + shared
+
+
+def _combined_summary(summaries: Sequence[ReferenceSummary]) -> ReferenceSummary:
+    """One reference summary for all trials: every method used, the largest disagreements."""
+    methods = tuple(dict.fromkeys(m for s in summaries for m in s.methods))
+    agreement = {m: max(s.agreement.get(m, 0.0) for s in summaries) for m in methods
+                 if any(m in s.agreement for s in summaries)}
+    return ReferenceSummary(summaries[0].primary, methods, agreement,
+                            {k: v for s in summaries for k, v in s.unavailable.items()},
+                            max(s.unreliable for s in summaries))

@@ -176,5 +176,6 @@ def _tensor_result(t, claimed: np.ndarray, ref: np.ndarray, err: np.ndarray, jud
     cosine, scale = _cosine_and_scale(c, r)
     finite = bool(np.all(np.isfinite(claimed)))
     ok = finite and worst <= tol
-    return TensorResult(t.path, t.layer, t.shape, worst, index, int(checked.sum()), cosine, scale, ok, tol,
-                        int(bad.sum()), t.size, err)
+    return TensorResult(path=t.path, layer=t.layer, shape=t.shape, error=worst, worst_index=index,
+                        checked=int(checked.sum()), cosine=cosine, scale=scale, ok=ok, tolerance=tol,
+                        unreliable=int(bad.sum()), size=t.size, errors=err)

@@ -163,7 +163,8 @@ def claimed_from(plan: Plan, grads: Any, what: str = "grads") -> tuple[list[np.n
             raw = grads(params_copy, *copy_data(plan.user_data, promote=False))
         except Exception as exc:
             raise input_error(what, f"a callable {what}(params, *data) that returns the claimed values",
-                              f"{type(exc).__name__}: {exc}", "Fix the error shown above in the backward pass.") from exc
+                              f"{type(exc).__name__}: {exc}",
+                              "Fix the error shown above in the backward pass.") from exc
     arrays = flatten_like(plan.structure, raw, what)
     # The precision the user's backward really had is the lowest among the claimed
     # array, its parameter and the float data: a float32 product upcast by a float64

@@ -46,11 +46,9 @@ class Tensor:
     """One parameter tensor of the pytree: where it is and what it looks like."""
 
     path: str
-    keys: tuple
     layer: str
     shape: tuple[int, ...]
     dtype: np.dtype
-    python_scalar: bool
 
     @property
     def size(self) -> int:
@@ -183,13 +181,13 @@ def flatten(tree: Any, layers: LayerSpec = None, what: str = "params") -> tuple[
         raise input_error("layers", "a mapping path -> layer name or a callable", describe(layers),
                           "Pass e.g. layers={'W_in': 'hidden'} or layers=lambda path: path.split('_')[0].")
     tensors = []
-    for keys, path, layer, (_, leaf) in zip(all_keys, paths, names, found):
+    for path, layer, (_, leaf) in zip(paths, names, found):
         if not (isinstance(leaf, (float, np.ndarray, np.generic)) or hasattr(leaf, "__array__")):
             raise input_error(f"{what} {path}", "a float array or a Python float", describe(leaf),
                               "Use numpy arrays (np.asarray(value, dtype=float)) as leaves.")
         arr = np.asarray(leaf)
         check_float_dtype(f"{what} {path}", arr)
-        tensors.append(Tensor(path, keys, layer, tuple(arr.shape), arr.dtype, isinstance(leaf, float)))
+        tensors.append(Tensor(path=path, layer=layer, shape=tuple(arr.shape), dtype=arr.dtype))
     return Structure(tuple(tensors), recipe), [leaf for _, leaf in found]
 
 

@@ -124,20 +124,21 @@ def check_deltas(plan: Plan, deltas: Any, tolerance: float | None, layer_of: Cal
         findings: list[RankedFinding] = []
         if name.endswith(".z") and name[:-2] + ".a" in recorded:
             out_name = name[:-2] + ".a"
-            findings += factor_findings(name, layer, claimed[origin], recorded[name], recorded[out_name],
-                                        judgement.primary.values[names.index(out_name)],
-                                        judgement.primary.values[origin], t.tolerance)
+            factors = factor_findings(name, layer, claimed[origin], recorded[name], recorded[out_name],
+                                      judgement.primary.values[names.index(out_name)],
+                                      judgement.primary.values[origin], t.tolerance)
+            findings += (RankedFinding(*f) for f in factors)
         if not findings:
             batch = tuple(int(d.shape[0]) for d in plan.data if isinstance(d, np.ndarray) and d.ndim >= 1)
             evidence = Evidence(structure, tuple(claimed), tuple(leaves), judgement, batch, tuple(names))
             findings += [RankedFinding(finding=f, misfit=m, evidence=EvidenceTier.MUTANT)
                          for f, m in tensor_findings(evidence, origin)[:1]]
         if not findings:
-            findings.append((Finding("unexplained", layer, name,
+            findings.append(RankedFinding(finding=Finding("unexplained", layer, name,
                                      f"the claimed delta at {name} is the first wrong one counting from the loss "
                                      f"(relative error {t.error:.3g} at {t.worst_index}); the mistake is in the "
                                      "backward step that computes it; the deltas before it inherit the error", None),
-                             t.error, EvidenceTier.MUTANT))
+                                          misfit=t.error, evidence=EvidenceTier.MUTANT))
         return findings
 
     # the same pipeline as the parameters' check: references, comparison, settling (noise, a second

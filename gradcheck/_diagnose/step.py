@@ -58,21 +58,22 @@ def check_step(plan: Plan, update: Callable, reference: Sequence[np.ndarray]) ->
         size = max(float(np.linalg.norm(move)), 1e-300)
         tol = 1e-3 if d.itemsize <= 4 else 1e-7
         if rest > tol * size:
-            findings.append((Finding("unexplained", t.layer, t.path,
-                                     f"the update of {t.path} is not a multiple of its gradient (the part not parallel "
-                                     f"to it is {rest / size:.2g} of the step); check which gradient the update uses",
-                                     lr), rest / size, EvidenceTier.MUTANT))
+            findings.append(RankedFinding(finding=Finding(
+                "unexplained", t.layer, t.path, f"the update of {t.path} is not a multiple of its gradient (the part "
+                f"not parallel to it is {rest / size:.2g} of the step); check which gradient the update uses", lr),
+                misfit=rest / size, evidence=EvidenceTier.MUTANT))
         elif lr < 0:
-            findings.append((Finding("ascent-step", t.layer, t.path,
-                                     f"the update moves {t.path} up the gradient (effective learning rate {lr:.4g}); "
-                                     "subtract the gradient: w = w - lr * g", lr), 0.0, EvidenceTier.CLAIMED_DELTAS))
+            findings.append(RankedFinding(finding=Finding(
+                "ascent-step", t.layer, t.path, f"the update moves {t.path} up the gradient (effective learning rate "
+                f"{lr:.4g}); subtract the gradient: w = w - lr * g", lr),
+                misfit=0.0, evidence=EvidenceTier.CLAIMED_DELTAS))
     evaluations = 0
     if not findings and rates:
         evaluations, raised = _small_step_raises_loss(plan, new_leaves)
         if raised:
-            findings.append((Finding("ascent-step", None, "step",
-                                     "a small step in the direction of the update raises the loss; the update's "
-                                     "sign is flipped", None), 0.0, EvidenceTier.CLAIMED_DELTAS))
+            findings.append(RankedFinding(finding=Finding(
+                "ascent-step", None, "step", "a small step in the direction of the update raises the loss; the "
+                "update's sign is flipped", None), misfit=0.0, evidence=EvidenceTier.CLAIMED_DELTAS))
     return StepCheck(rates, tuple(findings), evaluations)
 
 

@@ -41,7 +41,8 @@ def error_colour(error: float, tolerance: float) -> tuple[int, int, int]:
     for (x0, c0), (x1, c1) in zip(ANCHORS[:-1], ANCHORS[1:]):
         if x <= x1:
             w = (x - x0) / (x1 - x0)
-            return tuple(int(round(a + w * (b - a))) for a, b in zip(c0, c1))
+            r, g, b = (int(round(lo + w * (hi - lo))) for lo, hi in zip(c0, c1))
+            return r, g, b
     return ANCHORS[-1][1]
 
 
@@ -121,14 +122,15 @@ def plot_errors(report: Any, tensors: Sequence[str] | None = None):
     except ImportError as exc:  # the optional extra is missing
         from .._core.errors import input_error
 
-        raise input_error("Report.plot", "matplotlib installed", "ImportError", "pip install 'gradcheck[plot]'") from exc
+        raise input_error("Report.plot", "matplotlib installed", "ImportError",
+                          "pip install 'gradcheck[plot]'") from exc
     chosen = [t for t in report.tensors + report.deltas
               if t.errors is not None and (tensors is None or t.path in tensors)]
     lo, hi = ANCHORS[0][0], ANCHORS[-1][0]
     # with_extremes, not set_bad: set_bad warns of its deprecation from matplotlib 3.11 on
     cmap = LinearSegmentedColormap.from_list(
         "gradcheck", [((x - lo) / (hi - lo), tuple(c / 255 for c in rgb)) for x, rgb in ANCHORS]
-    ).with_extremes(bad=tuple(c / 255 for c in UNCHECKED))
+    ).with_extremes(bad=(UNCHECKED[0] / 255, UNCHECKED[1] / 255, UNCHECKED[2] / 255))
     fig, axes = plt.subplots(1, max(len(chosen), 1), figsize=(3 * max(len(chosen), 1), 3), squeeze=False)
     for ax, t in zip(axes[0], chosen):
         grid = _as_grid(t.errors)

@@ -58,7 +58,7 @@ class Finding:
                 "detail": self.detail, "factor": _json_float(self.factor)}
 
 
-@dataclass(frozen=True, eq=False)
+@dataclass(frozen=True, eq=False, kw_only=True)
 class TensorResult:
     """The comparison of one parameter tensor's claimed gradient with the reference.
 
@@ -135,6 +135,18 @@ class ReferenceSummary:
         return {"primary": self.primary, "methods": list(self.methods),
                 "agreement": {k: _json_float(v) for k, v in self.agreement.items()},
                 "unavailable": dict(self.unavailable), "unreliable": int(self.unreliable)}
+
+
+def nondeterministic_report(structure: Any, where: str, detail: str, evaluations: int, why: str,
+                            title: str) -> Report:
+    """The report of a check that could not start: the loss (or a layer's forward) is not deterministic."""
+    nan = float("nan")
+    tensors = tuple(TensorResult(path=t.path, layer=t.layer, shape=t.shape, error=nan, worst_index=(), checked=0,
+                                 cosine=nan, scale=nan, ok=False, tolerance=nan, unreliable=0, size=t.size)
+                    for t in structure.tensors)
+    return Report(False, tensors, build_layers(tensors, structure.layer_order),
+                  (Finding("nondeterministic-loss", None, where, detail),), evaluations,
+                  ReferenceSummary("none", (), {}, {"all": why}), title=title)
 
 
 def build_layers(tensors: tuple[TensorResult, ...], order: tuple[str, ...]) -> tuple[LayerResult, ...]:

@@ -31,6 +31,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+from dataclasses import dataclass
 from typing import Any, Sequence
 
 import numpy as np
@@ -59,6 +60,7 @@ from .directional import (
     detectable_norm,
     miss_probability,
 )
+from . import directional
 from .progress import open_bar
 from .runners import ExecutorRunner, SerialRunner
 
@@ -108,7 +110,7 @@ def check_within_budget(plan: Any, claimed: list, dtypes: list, traced: Any, bud
         reserve = _localisation_cost(max([tensors[k].size for k in live], default=1))
         r = int(np.clip((avail - session.used - reserve) // max(2 * len(live), 1), 1, MAX_DIRECTIONS))
         bar.grow(2 * r * len(live) + reserve)
-        probes = {k: [] for k in live}
+        probes: dict[int, list[directional.Probe]] = {k: [] for k in live}
         for p in session.measure([(k, (seed, k, d), 0, tensors[k].size) for k in live for d in range(r)]):
             probes[p.k].append(p)
         for k in live:
@@ -135,6 +137,19 @@ def check_within_budget(plan: Any, claimed: list, dtypes: list, traced: Any, bud
     return judgement, session.used, notes
 
 
+@dataclass(frozen=True, kw_only=True, eq=False)
+class TensorOutcome:
+    """One tensor's part of a budgeted check: its result and the per-entry arrays the judgement is made of
+    (reference values and their accuracy, relative errors, floors, and the entries not judged)."""
+
+    result: TensorResult
+    values: np.ndarray
+    atol: np.ndarray
+    errors: np.ndarray
+    floors: np.ndarray
+    unreliable: np.ndarray
+
+
 def _unknown(shape: tuple, fill: Any) -> np.ndarray:
     """A read-only array of one value, without the memory of a copy of the tensor."""
     return np.broadcast_to(np.asarray(fill), shape)
@@ -142,26 +157,30 @@ def _unknown(shape: tuple, fill: Any) -> np.ndarray:
 
 def _tensor_part(k, t, plan, claimed, finite, live, probes, trusted, jud, ad, searches, entry_tol, rtols, floors,
                  kinked=False):
-    """For tensor ``k``: (TensorResult, reference values, their accuracy, per-entry errors, floors, unreliable).
+    """For tensor ``k``: its :class:`TensorOutcome`.
 
     A ``kinked`` tensor (every failing test straddled a kink) has all its entries unreliable: not judged.
     """
     if k in trusted:
-        return jud.tensors[k], ad.values[k], ad.atol[k], jud.errors[k], jud.floors[k], jud.unreliable[k]
+        return TensorOutcome(result=jud.tensors[k], values=ad.values[k], atol=ad.atol[k], errors=jud.errors[k],
+                             floors=jud.floors[k], unreliable=jud.unreliable[k])
     values, atol, errors = _unknown(t.shape, math.nan), _unknown(t.shape, math.inf), _unknown(t.shape, math.nan)
-    rest = (_unknown(t.shape, floors[k]), _unknown(t.shape, False))
+    floor, unjudged = _unknown(t.shape, floors[k]), _unknown(t.shape, False)
     if kinked:
         ps = probes[k]
         cosine, fitted = _cosine_and_scale(np.array([p.dot for p in ps]), np.array([p.num for p in ps]))
-        result = TensorResult(t.path, t.layer, t.shape, 0.0, (), t.size, cosine, fitted, True, rtols[k], t.size,
-                              t.size, errors)
-        return (result, values, atol, errors, rest[0], _unknown(t.shape, True))
+        result = TensorResult(path=t.path, layer=t.layer, shape=t.shape, error=0.0, worst_index=(), checked=t.size,
+                              cosine=cosine, scale=fitted, ok=True, tolerance=rtols[k], unreliable=t.size,
+                              size=t.size, errors=errors)
+        return TensorOutcome(result=result, values=values, atol=atol, errors=errors, floors=floor,
+                             unreliable=_unknown(t.shape, True))
     if k not in live:  # non-finite claims (no evaluation needed to judge them), or an empty tensor
         bad = np.flatnonzero(~np.isfinite(claimed[k].reshape(-1)))
         index = tuple(int(i) for i in np.unravel_index(bad[0], t.shape)) if bad.size and t.shape else ()
-        result = TensorResult(t.path, t.layer, t.shape, math.inf if bad.size else 0.0, index, t.size, math.nan,
-                              math.nan, not bad.size, entry_tol[k], 0, t.size, errors)
-        return (result, values, atol, errors) + rest
+        result = TensorResult(path=t.path, layer=t.layer, shape=t.shape, error=math.inf if bad.size else 0.0,
+                              worst_index=index, checked=t.size, cosine=math.nan, scale=math.nan, ok=not bad.size,
+                              tolerance=entry_tol[k], unreliable=0, size=t.size, errors=errors)
+        return TensorOutcome(result=result, values=values, atol=atol, errors=errors, floors=floor, unreliable=unjudged)
     ps = probes[k]
     cosine, fitted = _cosine_and_scale(np.array([p.dot for p in ps]), np.array([p.num for p in ps]))
     error, index, tol = max(p.error for p in ps), (), rtols[k]
@@ -177,25 +196,26 @@ def _tensor_part(k, t, plan, claimed, finite, live, probes, trusted, jud, ad, se
             error, tol = float(errors.flat[worst]), entry_tol[k]
             index = tuple(int(i) for i in np.unravel_index(worst, t.shape)) if t.shape else ()
     ok = not any(p.fails() for p in ps)
-    result = TensorResult(t.path, t.layer, t.shape, float(error), index, t.size, cosine, fitted, ok, tol, 0, t.size,
-                          errors)
-    return (result, values, atol, errors) + rest
+    result = TensorResult(path=t.path, layer=t.layer, shape=t.shape, error=float(error), worst_index=index,
+                          checked=t.size, cosine=cosine, scale=fitted, ok=ok, tolerance=tol, unreliable=0, size=t.size,
+                          errors=errors)
+    return TensorOutcome(result=result, values=values, atol=atol, errors=errors, floors=floor, unreliable=unjudged)
 
 
 def _judgement(plan, ad, trusted, parts, unavailable, probes, scale) -> Judgement:
-    located = ("central",) if any(np.isfinite(p[1]).any() for k, p in enumerate(parts) if k not in trusted) else ()
-    values, atol = tuple(p[1] for p in parts), tuple(p[2] for p in parts)
+    located = ("central",) if any(np.isfinite(p.values).any() for k, p in enumerate(parts) if k not in trusted) else ()
+    values, atol = tuple(p.values for p in parts), tuple(p.atol for p in parts)
     if ad is not None and trusted:
         agreement = max([p.ref_error for k in trusted for p in probes.get(k, [])], default=0.0)
         summary = ReferenceSummary("autodiff", ("autodiff", "directional") + located, {"directional": agreement},
-                                   dict(unavailable), int(sum(int(np.sum(parts[k][5])) for k in trusted)))
+                                   dict(unavailable), int(sum(int(np.sum(parts[k].unreliable)) for k in trusted)))
         primary = Estimate("autodiff", values, atol, ad.rtol)
     else:
         summary = ReferenceSummary("directional", ("directional",) + located, {}, dict(unavailable),
-                                   int(sum(int(np.sum(p[5])) for p in parts)))
+                                   int(sum(int(np.sum(p.unreliable)) for p in parts)))
         primary = Estimate("directional", values, atol, 1e-6 if plan.loss_eps <= EPS64 else 1e-2)
-    return Judgement(primary, tuple(p[0] for p in parts), summary, tuple(p[5] for p in parts),
-                     tuple(p[3] for p in parts), scale, tuple(p[4] for p in parts))
+    return Judgement(primary, tuple(p.result for p in parts), summary, tuple(p.unreliable for p in parts),
+                     tuple(p.errors for p in parts), scale, tuple(p.floors for p in parts))
 
 
 def _entries(t: Any, js: Sequence[int]) -> str:
@@ -235,8 +255,8 @@ def _notes(plan, cap, default, limit, used, r, seed, live, probes, trusted, sear
             taus, norm = [p.tau for p in ps], float(np.linalg.norm(claimed[k]))
             e99 = detectable_norm(taus, t.size)
             share = f" ({e99 / norm:.2g} of the claimed gradient's norm)" if norm > 0 else ""
-            notes.append(f"{t.path}: {len(ps)} directional test(s) over all {t.size:,} entries passed; an error of norm "
-                         f"{e99:.2g}{share} or more would have been seen with probability at least {DETECTION:.0%}, "
+            notes.append(f"{t.path}: {len(ps)} directional test(s) over all {t.size:,} entries passed; an error of "
+                         f"norm {e99:.2g}{share} or more would have been seen with probability at least {DETECTION:.0%}, "
                          "and one entry off by 1% of the tensor's RMS gradient entry would be missed with probability "
                          f"at most {miss_probability(taus, t.size, 0.01 * norm / math.sqrt(t.size)):.2g}.")
             continue

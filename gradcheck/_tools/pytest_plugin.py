@@ -31,7 +31,7 @@ def _safe(name: str) -> str:
     return re.sub(r"[^A-Za-z0-9_.-]+", "_", name).strip("_")[:120] or "report"
 
 
-_REPORTS = pytest.StashKey[list]()
+_REPORTS = pytest.StashKey[list[Report]]()
 
 
 def _listen(item: pytest.Item):
@@ -61,7 +61,8 @@ def pytest_runtest_setup(item: pytest.Item):
 def pytest_runtest_call(item: pytest.Item):
     outcome = yield from _listen(item)
     if outcome.excinfo is not None:
-        for i, report in enumerate(item.stash[_REPORTS]):
+        stored: list[Report] = item.stash[_REPORTS]
+        for i, report in enumerate(stored):
             item.add_report_section("call", f"gradcheck report {i + 1}", str(report))
 
 
