@@ -78,7 +78,7 @@ def _walk(closed: Any, args: Sequence[Any], const: Callable, apply: Callable) ->
     env.update(zip(jaxpr.invars, args))
 
     def read(atom: Any) -> Any:
-        return const(atom.val, atom.aval.dtype) if isinstance(atom, Literal) else env[atom]
+        return const(atom.val, getattr(atom.aval, "dtype", None)) if isinstance(atom, Literal) else env[atom]
 
     for eqn in jaxpr.eqns:
         ins = [read(a) for a in eqn.invars]
@@ -112,10 +112,13 @@ class Program:
 
     # ----- building -------------------------------------------------------------------------
     def _slot(self, shape: tuple, dtype: Any, producer: int | None, active: bool, label: tuple) -> int:
-        for column, item in ((self.shapes, tuple(shape)), (self.dtypes, np.dtype(dtype)),
-                             (self.producer, producer), (self.active, active), (self.consumers, []),
-                             (self._label, label), (self.values, None)):
-            column.append(item)
+        self.shapes.append(tuple(shape))
+        self.dtypes.append(np.dtype(dtype))
+        self.producer.append(producer)
+        self.active.append(active)
+        self.consumers.append([])
+        self._label.append(label)
+        self.values.append(None)
         return len(self.shapes) - 1
 
     def add_param(self, shape: tuple, index: int) -> int:
@@ -166,10 +169,11 @@ class Program:
     # ----- queries --------------------------------------------------------------------------
     def origin(self, i: int) -> int:
         """Follow data-movement steps back to the slot a value was copied from."""
-        while self.producer[i] is not None and self.steps[self.producer[i]].name in PASSTHROUGH \
-                and len(self.steps[self.producer[i]].ins) == 1:
-            i = self.steps[self.producer[i]].ins[0]
-        return i
+        while True:
+            k = self.producer[i]
+            if k is None or self.steps[k].name not in PASSTHROUGH or len(self.steps[k].ins) != 1:
+                return i
+            i = self.steps[k].ins[0]
 
     def scalar_constant(self, i: int) -> float | None:
         """The value of a slot that is one number independent of the parameters, else None."""
@@ -309,7 +313,7 @@ def trace_program(fun: Callable[[Any], Any], leaves: Sequence[Any], structure: A
 
 #: For the rare program that must be compiled: it runs once on tiny arrays, so compile
 #: time is everything; optimisation level 0 roughly halves it, the arithmetic is the same.
-_FAST_COMPILE = {"xla_backend_optimization_level": 0, "xla_llvm_disable_expensive_passes": True}
+_FAST_COMPILE: dict[str, Any] = {"xla_backend_optimization_level": 0, "xla_llvm_disable_expensive_passes": True}
 
 
 class _Unsupported(Exception):
@@ -354,13 +358,17 @@ def _np_broadcast(x: np.ndarray, shape: tuple, broadcast_dimensions: tuple, **_:
     return np.broadcast_to(x.reshape(full), shape)
 
 
+def _reduction(g: Callable) -> Callable:
+    return lambda x, axes, **_: g(x, axis=tuple(axes))
+
+
 def _plain(f: Callable) -> Callable:
     return lambda *xs, **_: f(*xs)
 
 
 #: numpy stand-ins for the primitives of typical losses and their pullbacks (single output).
 _NUMPY: dict[str, Callable] = {
-    **{n: _plain(f) for n, f in {
+    **{n: _plain(f) for n, f in dict[str, Callable]({
         "neg": np.negative, "exp": np.exp, "log": np.log, "log1p": np.log1p, "expm1": np.expm1,
         "tanh": np.tanh, "abs": np.abs, "sqrt": np.sqrt, "sign": np.sign, "square": np.square,
         "logistic": lambda x: 0.5 * (1.0 + np.tanh(0.5 * x)), "rsqrt": lambda x: 1.0 / np.sqrt(x),
@@ -370,7 +378,7 @@ _NUMPY: dict[str, Callable] = {
         "pow": np.power, "ne": np.not_equal, "eq": np.equal, "gt": np.greater, "lt": np.less,
         "ge": np.greater_equal, "le": np.less_equal, "add_any": np.add, "and": np.bitwise_and,
         "or": np.bitwise_or, "select_n": lambda p, *cases: np.choose(np.asarray(p).astype(int), cases),
-        "clamp": lambda lo, x, hi: np.clip(x, lo, hi)}.items()},
+        "clamp": lambda lo, x, hi: np.clip(x, lo, hi)}).items()},
     "argmax": lambda x, axes, index_dtype, **_: np.argmax(x, axis=axes[0]).astype(index_dtype),
     "div": lambda x, y, **_: np.true_divide(x, y) if np.issubdtype(np.result_type(x, y), np.inexact)
     else np.fix(np.true_divide(x, y)),
@@ -382,8 +390,7 @@ _NUMPY: dict[str, Callable] = {
     "expand_dims": lambda x, dimensions, **_: np.expand_dims(x, tuple(dimensions)),
     "transpose": lambda x, permutation, **_: np.transpose(x, permutation),
     "convert_element_type": lambda x, new_dtype, **_: np.asarray(x).astype(new_dtype),
-    **{f"reduce_{n}": (lambda g: lambda x, axes, **_: g(x, axis=tuple(axes)))(g)
-       for n, g in (("sum", np.sum), ("max", np.max), ("min", np.min))},
+    **{f"reduce_{n}": _reduction(g) for n, g in (("sum", np.sum), ("max", np.max), ("min", np.min))},
     "slice": lambda x, start_indices, limit_indices, strides, **_: x[tuple(
         slice(a, b, c) for a, b, c in zip(start_indices, limit_indices, strides or [None] * x.ndim))],
 }
