@@ -54,6 +54,9 @@ class Transfer:
         formula: how a message writes the derivative.
         wrong_derivatives: common wrong derivatives, each a :class:`WrongDerivative`.
         elementwise: ``False`` for softmax (a whole row at once; output layer only).
+        at_output: (how it reads, factor) of the derivative evaluated at the output a instead of z,
+            for the traced-mutant diagnosis; ``None`` where that gives the same value (ReLU).
+        swapped: (description, factor) of other units' derivatives used in its place.
     """
 
     name: str
@@ -63,6 +66,8 @@ class Transfer:
     formula: str
     wrong_derivatives: tuple[WrongDerivative, ...] = ()
     elementwise: bool = True
+    at_output: tuple[str, Callable[[np.ndarray, np.ndarray], np.ndarray]] | None = None
+    swapped: tuple[tuple[str, Callable[[np.ndarray, np.ndarray], np.ndarray]], ...] = ()
 
     def numpy_forward(self, z: np.ndarray) -> np.ndarray:
         """The forward pass in numpy."""
@@ -124,7 +129,11 @@ _RECORDS = (
             WrongDerivative(_MISPLACED, "the logistic derivative is evaluated at s(a), the function applied twice; "
                             "use a * (1 - a) with a the layer's output", lambda z, a: _s(a) * (1 - _s(a))),
             WrongDerivative(_MISPLACED, "the tanh derivative 1 - a^2 is used for a logistic layer; use a * (1 - a)",
-                            lambda z, a: 1 - a ** 2))),
+                            lambda z, a: 1 - a ** 2)),
+        at_output=("logistic(a)*(1-logistic(a))", lambda z, a: _s(a) * (1 - _s(a))),
+        swapped=(("the tanh derivative 1 - a**2 applied to the logistic output a", lambda z, a: 1 - a ** 2),
+                 ("the tanh derivative 1 - tanh(z)**2 at the logistic's input z",
+                  lambda z, a: 1 - np.tanh(z) ** 2))),
     Transfer(
         name="tanh", forward=lambda xp, z: xp.tanh(z), derivative_from_z=lambda z: 1 - np.tanh(z) ** 2,
         derivative_from_a=lambda a: 1 - a ** 2, formula="1 - a**2",
@@ -134,7 +143,11 @@ _RECORDS = (
             WrongDerivative(_MISPLACED, "the tanh derivative is evaluated at tanh(a), the function applied twice; "
                             "use 1 - a^2 with a the layer's output", lambda z, a: 1 - np.tanh(a) ** 2),
             WrongDerivative(_MISPLACED, "the logistic derivative a(1 - a) is used for a tanh layer; use 1 - a^2",
-                            lambda z, a: a * (1 - a)))),
+                            lambda z, a: a * (1 - a))),
+        at_output=("1 - tanh(a)**2", lambda z, a: 1 - np.tanh(a) ** 2),
+        swapped=(("the logistic derivative a*(1-a) applied to the tanh output a", lambda z, a: a * (1 - a)),
+                 ("the logistic derivative logistic(z)*(1-logistic(z)) at the tanh's input z",
+                  lambda z, a: _s(z) * (1 - _s(z))))),
     Transfer(
         name="relu", forward=lambda xp, z: xp.where(_positive(xp, z), z, 0),
         derivative_from_z=lambda z: (z > 0).astype(float), derivative_from_a=None, formula="the step (z > 0)"),
@@ -148,7 +161,8 @@ _RECORDS = (
         name="softplus", forward=softplus, derivative_from_z=_s, derivative_from_a=None, formula="logistic(z)",
         wrong_derivatives=(
             WrongDerivative(_MISPLACED, "the softplus derivative logistic(z) is evaluated at the output a; "
-                            "use logistic(z) of the pre-activation", lambda z, a: _s(a)),)),
+                            "use logistic(z) of the pre-activation", lambda z, a: _s(a)),),
+        at_output=("logistic(a)", lambda z, a: _s(a))),
     Transfer(
         name="leaky-relu", forward=lambda xp, z: xp.where(_positive(xp, z), z, LEAKY_SLOPE * z),
         derivative_from_z=lambda z: np.where(z > 0, 1.0, LEAKY_SLOPE), derivative_from_a=None,
