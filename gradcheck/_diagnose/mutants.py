@@ -8,7 +8,10 @@ tensor to rounding names the mistake and the layer, while wrong guesses miss by 
 Sites (composite forms are recognised by value, robust to the many spellings):
 
 * transfer functions: primitives ``logistic``, ``tanh``, ``exp``, ``log``,
-  ``max(z, 0)``, and ``1/(1+exp(-z))``, ``log(1+exp(z))`` written out;
+  ``max(z, 0)``, and ``1/(1+exp(-z))``, ``log(1+exp(z))`` written out; leaky ReLU as
+  ``where(z > 0, z, c z)`` or ``max(z, c z)`` (matched by value against the registry,
+  :mod:`gradcheck._diagnose.transfers`, whose records give each function's derivative,
+  formula and common slips);
 * softmax and log-softmax along an axis, written out or from ``jax.nn``;
 * products (``dot_general``) with a square weight, where transposing is silent;
 * multiplications and divisions by constants (the 0.5 of a squared error, 1/N).
@@ -75,8 +78,9 @@ _DERIV: dict[str, Callable[[np.ndarray, np.ndarray], np.ndarray]] = {
     "exp": lambda z, a: a, "log": lambda z, a: 1 / z, **{n: TRANSFERS[n].derivative for n in _REGISTERED}}
 _FORMULA = {"exp": "exp(z)", "log": "1/z", **{n: TRANSFERS[n].formula for n in _REGISTERED}}
 #: Derivative evaluated at the output a instead of the input z (same value for ReLU: omitted).
-_AT_OUTPUT = {"exp": ("exp(a)", lambda z, a: np.exp(np.minimum(a, 700.0))),
-              **{n: TRANSFERS[n].at_output for n in _REGISTERED if TRANSFERS[n].at_output is not None}}
+_AT_OUTPUT: dict[str, tuple[str, Callable[[np.ndarray, np.ndarray], np.ndarray]]] = {
+    "exp": ("exp(a)", lambda z, a: np.exp(np.minimum(a, 700.0))),
+    **{n: at for n in _REGISTERED if (at := TRANSFERS[n].at_output) is not None}}
 #: The other common unit's derivative in place of this one's: (description, multiplier).
 _SWAPPED = {n: list(TRANSFERS[n].swapped) for n in _REGISTERED if TRANSFERS[n].swapped}
 _NAMES = {"relu": "ReLU max(z, 0)", "leaky-relu": f"leaky ReLU (slope {LEAKY_SLOPE} below 0)"}
