@@ -30,10 +30,12 @@ import numpy as np
 from hypothesis import strategies as st
 
 from ._case.network import NetworkDescription, describe_network
+from ._diagnose.transfers import ELEMENTWISE
 
 __all__ = ["mlp_descriptions", "params_for", "batches_for", "mlp_cases"]
 
-HIDDEN = ("logistic", "tanh", "relu", "identity")
+#: Hidden-layer transfers: every elementwise function of the registry (softmax is for the output layer).
+HIDDEN = ELEMENTWISE
 LOSSES = ("half-squared-error", "mean-squared-error", "softmax-cross-entropy", "logistic-cross-entropy")
 
 

@@ -79,7 +79,9 @@ def ref_transfer(name: str, z: np.ndarray) -> np.ndarray:
             "tanh": lambda: np.sinh(z) / np.cosh(z),
             "relu": lambda: z * (z > 0),
             "identity": lambda: z,
-            "softmax": lambda: np.exp(z) / np.exp(z).sum(axis=1, keepdims=True)}[name]()
+            "softmax": lambda: np.exp(z) / np.exp(z).sum(axis=1, keepdims=True),
+            "softplus": lambda: np.log(1 + np.exp(z)),
+            "leaky-relu": lambda: np.where(z > 0, z, 0.01 * z)}[name]()  # slope 0.01 as commonly used
 
 
 def ref_loss(net: NetworkDescription, params: dict, x: np.ndarray, y: np.ndarray) -> float:
@@ -100,7 +102,7 @@ def ref_loss(net: NetworkDescription, params: dict, x: np.ndarray, y: np.ndarray
     return total / n if net.batch == "mean" else total
 
 
-TRANSFER_CASES = ["logistic", "tanh", "relu", "identity", "softmax"]
+TRANSFER_CASES = ["logistic", "tanh", "relu", "identity", "softmax", "softplus", "leaky-relu"]
 
 
 @pytest.mark.parametrize("transfer", TRANSFER_CASES)
@@ -221,6 +223,9 @@ def test_logistic_derivative_is_s_times_one_minus_s():
     ("logistic-cross-entropy", "logistic", [[800.0]], [[0.0]], 800.0),
     ("half-squared-error", "logistic", [[-800.0]], [[0.0]], 0.0),
     ("half-squared-error", "softmax", [[900.0, 0.0]], [[1.0, 0.0]], 0.0),
+    # softplus(z) tends to z for large z and to 0 for very negative z (common practice).
+    ("half-squared-error", "softplus", [[800.0]], [[800.0]], 0.0),
+    ("half-squared-error", "softplus", [[-800.0]], [[0.0]], 0.0),
 ])
 def test_extreme_pre_activations_stay_finite(loss_name, transfer, z, y, expected):
     z = np.array(z)
@@ -235,7 +240,9 @@ def test_extreme_pre_activations_stay_finite(loss_name, transfer, z, y, expected
                                                 ("softmax", "softmax-cross-entropy"),
                                                 ("tanh", "half-squared-error"),
                                                 ("identity", "mean-squared-error"),
-                                                ("relu", "half-squared-error")])
+                                                ("relu", "half-squared-error"),
+                                                ("softplus", "half-squared-error"),
+                                                ("leaky-relu", "mean-squared-error")])
 def test_complex_step_agrees_with_jax(transfer, loss_name):
     # Complex-step derivative Im f(x + ih) / h (Squire & Trapp, SIAM Review 40(1), 1998; cited from memory):
     # it needs the loss to be analytic in the parameters, which the where/real-part forms keep.

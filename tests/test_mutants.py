@@ -360,3 +360,26 @@ def test_build_errors(fun, leaves, kwargs, match):
     structure, own = flatten({"w": np.arange(3.0)})
     with jax.enable_x64(True), pytest.raises(InputError, match=match):
         build_mutants(fun, own if leaves is None else leaves, structure, **kwargs)
+
+
+def _leaky_where(z):
+    return jnp.where(z > 0, z, 0.01 * z)  # leaky ReLU, slope 0.01 below 0 (common practice)
+
+
+def _leaky_max(z):
+    return jnp.maximum(z, 0.01 * z)
+
+
+@pytest.mark.parametrize("leaky", [_leaky_where, _leaky_max], ids=["where", "maximum"])
+def test_both_traced_spellings_of_leaky_relu_are_transfer_sites_of_their_layer(leaky):
+    rng = np.random.default_rng(31)
+    params = {"h": {"W": rng.normal(size=(4, 3))}, "o": {"W": rng.normal(size=(3, 2))}}
+
+    def fun(p):
+        return 0.5 * jnp.sum((leaky(X @ p["h"]["W"]) @ p["o"]["W"]) ** 2)
+    structure, leaves = flatten(params)
+    with jax.enable_x64(True):
+        mutants = build_mutants(fun, leaves, structure)
+    sites = {(m.kind, m.layer) for m in mutants if m.where.startswith("leaky ReLU")}
+    assert ("missing-transfer-derivative", "h") in sites
+    assert not any(m.where.startswith("ReLU") for m in mutants)

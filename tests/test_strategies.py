@@ -68,3 +68,10 @@ def test_drawn_shapes_match_the_description(data):
         assert params[layer.name]["W"].shape == net.weight_shape(layer.name)
         assert params[layer.name]["W"].dtype == np.float32
     assert x.shape[1] == net.inputs and y.shape == (x.shape[0], net.outputs) and 2 <= x.shape[0] <= 5
+
+
+@pytest.mark.parametrize("transfer", ["softplus", "leaky-relu"])
+def test_the_default_hidden_transfers_include_softplus_and_leaky_relu(transfer):
+    from hypothesis import find
+    net = find(mlp_descriptions(max_layers=3), lambda n: any(layer.transfer == transfer for layer in n.layers))
+    assert transfer in [layer.transfer for layer in net.layers[:-1]]

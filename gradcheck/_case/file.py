@@ -17,6 +17,7 @@ import difflib
 import io
 import json
 import os
+import tomllib
 from dataclasses import dataclass
 from typing import Any, Mapping
 
@@ -69,12 +70,6 @@ def read_description(source: Any) -> NetworkDescription:
     if kind not in (".json", ".toml"):
         raise input_error(f"description {path}", "a file ending in .json or .toml", f"suffix {kind!r}",
                           "Rename the file so its suffix says which syntax it uses.")
-    try:
-        import tomllib  # standard library from Python 3.11; imported here so 3.10 can still read JSON
-    except ImportError:  # pragma: no cover - only on Python 3.10
-        if kind == ".toml":
-            raise input_error(f"description {path}", "Python 3.11 or newer to read TOML", "an older Python",
-                              "Write the description as .json instead.") from None
     try:
         with open(path, "rb") as f:
             raw = f.read()

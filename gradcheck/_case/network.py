@@ -21,12 +21,16 @@ from typing import Any, Callable, Mapping, Sequence
 import numpy as np
 
 from .._core.errors import describe, input_error
+from .._diagnose.transfers import TRANSFERS as _REGISTRY
+from .._diagnose.transfers import log_softmax as _log_softmax
+from .._diagnose.transfers import softplus as _softplus
 
 __all__ = ["FORMAT_VERSION", "TRANSFERS", "LOSSES", "BATCH_MODES", "WEIGHT_LAYOUTS", "BIAS_MODES",
            "LayerDescription", "LayerProbes", "NetworkDescription", "NetworkLoss", "describe_network"]
 
 FORMAT_VERSION = 1
-TRANSFERS = ("logistic", "tanh", "relu", "identity", "softmax")
+#: The transfer functions a layer may name: those of the registry (:mod:`gradcheck._diagnose.transfers`).
+TRANSFERS = tuple(_REGISTRY)
 LOSSES = ("half-squared-error", "mean-squared-error", "softmax-cross-entropy", "logistic-cross-entropy")
 BATCH_MODES = ("sum", "mean")
 WEIGHT_LAYOUTS = ("in-by-out", "out-by-in")
@@ -286,46 +290,8 @@ def describe_network(inputs: int, layers: Sequence[Any], *, loss: str, batch: st
     return NetworkDescription(inputs, tuple(built), loss, batch, weight_layout, bias)
 
 
-def _positive(xp: Any, z: Any) -> Any:
-    """``Re z > 0``: the branch test of the piecewise forms; real part so complex steps stay analytic."""
-    return xp.real(z) > 0
-
-
-def _logistic(xp: Any, z: Any) -> Any:
-    # exp only ever sees a non-positive real part, so neither branch overflows.
-    pos = _positive(xp, z)
-    e = xp.exp(xp.where(pos, -z, z))
-    return xp.where(pos, 1 / (1 + e), e / (1 + e))
-
-
-def _softplus(xp: Any, z: Any) -> Any:
-    # log(1 + e^z) = max(z, 0) + log1p(e^{-|z|}), written with where so it is analytic branch by branch.
-    pos = _positive(xp, z)
-    return xp.where(pos, z, 0) + xp.log1p(xp.exp(xp.where(pos, -z, z)))
-
-
-def _shifted(xp: Any, z: Any) -> Any:
-    # Subtracting the row maximum leaves softmax unchanged and keeps exp from overflowing.
-    return z - xp.max(xp.real(z), axis=-1, keepdims=True)
-
-
-def _softmax(xp: Any, z: Any) -> Any:
-    e = xp.exp(_shifted(xp, z))
-    return e / xp.sum(e, axis=-1, keepdims=True)
-
-
-def _log_softmax(xp: Any, z: Any) -> Any:
-    s = _shifted(xp, z)
-    return s - xp.log(xp.sum(xp.exp(s), axis=-1, keepdims=True))
-
-
-TRANSFER_FUNCTIONS: dict[str, Callable[[Any, Any], Any]] = {
-    "logistic": _logistic,
-    "tanh": lambda xp, z: xp.tanh(z),
-    "relu": lambda xp, z: xp.where(_positive(xp, z), z, 0),
-    "identity": lambda xp, z: z,
-    "softmax": _softmax,
-}
+#: Forward pass of each transfer function, ``f(xp, z)``, read from the registry.
+TRANSFER_FUNCTIONS: dict[str, Callable[[Any, Any], Any]] = {name: t.forward for name, t in _REGISTRY.items()}
 
 
 @dataclass(frozen=True)

@@ -8,7 +8,10 @@ tensor to rounding names the mistake and the layer, while wrong guesses miss by 
 Sites (composite forms are recognised by value, robust to the many spellings):
 
 * transfer functions: primitives ``logistic``, ``tanh``, ``exp``, ``log``,
-  ``max(z, 0)``, and ``1/(1+exp(-z))``, ``log(1+exp(z))`` written out;
+  ``max(z, 0)``, and ``1/(1+exp(-z))``, ``log(1+exp(z))`` written out; leaky ReLU as
+  ``where(z > 0, z, c z)`` or ``max(z, c z)`` (matched by value against the registry,
+  :mod:`gradcheck._diagnose.transfers`, whose records give each function's derivative,
+  formula and common slips);
 * softmax and log-softmax along an axis, written out or from ``jax.nn``;
 * products (``dot_general``) with a square weight, where transposing is silent;
 * multiplications and divisions by constants (the 0.5 of a squared error, 1/N).
@@ -23,6 +26,7 @@ import numpy as np
 
 from .._core.errors import describe, input_error
 from .program import Mutation, Program, trace_program
+from .transfers import LEAKY_SLOPE, TRANSFERS
 
 __all__ = ["Mutant", "build_mutants", "rank_mutants", "misfit", "KINDS"]
 
@@ -67,27 +71,19 @@ def _softmax(z: np.ndarray, axes: tuple, log: bool) -> np.ndarray:
 
 
 _FORWARD = {"logistic": _sigmoid, "softplus": lambda z: np.logaddexp(z, 0.0)}
+#: Transfer functions whose derivative, formula and common slips come from the registry.
+_REGISTERED = ("logistic", "tanh", "relu", "softplus", "leaky-relu")
 #: Correct local derivative of each transfer function from its input z and output a.
 _DERIV: dict[str, Callable[[np.ndarray, np.ndarray], np.ndarray]] = {
-    "logistic": lambda z, a: a * (1 - a), "tanh": lambda z, a: 1 - a ** 2, "exp": lambda z, a: a,
-    "log": lambda z, a: 1 / z, "relu": lambda z, a: (z > 0).astype(float),
-    "softplus": lambda z, a: _sigmoid(z)}
-_FORMULA = {"logistic": "a*(1-a)", "tanh": "1 - a**2", "exp": "exp(z)", "log": "1/z",
-            "relu": "the step (z > 0)", "softplus": "logistic(z)"}
+    "exp": lambda z, a: a, "log": lambda z, a: 1 / z, **{n: TRANSFERS[n].derivative for n in _REGISTERED}}
+_FORMULA = {"exp": "exp(z)", "log": "1/z", **{n: TRANSFERS[n].formula for n in _REGISTERED}}
 #: Derivative evaluated at the output a instead of the input z (same value for ReLU: omitted).
-_AT_OUTPUT = {"logistic": ("logistic(a)*(1-logistic(a))", lambda z, a: _sigmoid(a) * (1 - _sigmoid(a))),
-              "tanh": ("1 - tanh(a)**2", lambda z, a: 1 - np.tanh(a) ** 2),
-              "exp": ("exp(a)", lambda z, a: np.exp(np.minimum(a, 700.0))),
-              "softplus": ("logistic(a)", lambda z, a: _sigmoid(a))}
+_AT_OUTPUT: dict[str, tuple[str, Callable[[np.ndarray, np.ndarray], np.ndarray]]] = {
+    "exp": ("exp(a)", lambda z, a: np.exp(np.minimum(a, 700.0))),
+    **{n: at for n in _REGISTERED if (at := TRANSFERS[n].at_output) is not None}}
 #: The other common unit's derivative in place of this one's: (description, multiplier).
-_SWAPPED = {
-    "logistic": [("the tanh derivative 1 - a**2 applied to the logistic output a", lambda z, a: 1 - a ** 2),
-                 ("the tanh derivative 1 - tanh(z)**2 at the logistic's input z",
-                  lambda z, a: 1 - np.tanh(z) ** 2)],
-    "tanh": [("the logistic derivative a*(1-a) applied to the tanh output a", lambda z, a: a * (1 - a)),
-             ("the logistic derivative logistic(z)*(1-logistic(z)) at the tanh's input z",
-              lambda z, a: _sigmoid(z) * (1 - _sigmoid(z)))]}
-_NAMES = {"relu": "ReLU max(z, 0)"}
+_SWAPPED = {n: list(TRANSFERS[n].swapped) for n in _REGISTERED if TRANSFERS[n].swapped}
+_NAMES = {"relu": "ReLU max(z, 0)", "leaky-relu": f"leaky ReLU (slope {LEAKY_SLOPE} below 0)"}
 
 
 def _block(prog: Program, u: int, v: int) -> frozenset | None:
@@ -199,6 +195,33 @@ def _transposed_rule(prog: Program, k: int, w_pos: int, positions: tuple, propag
     return rule
 
 
+def _leaky_site(prog: Program, k: int) -> list[tuple]:
+    """Leaky ReLU ending at step ``k``: ``where(z > 0, z, c z)`` (a ``select_n``) or ``max(z, c z)``.
+
+    The input z is one of the step's inputs or an input of the multiplication feeding it;
+    the output must equal the registry's leaky ReLU of z and be computed from z alone.
+    """
+    step, v = prog.steps[k], prog.steps[k].outs[0]
+    cands = list(step.ins)
+    for i in step.ins:
+        p = prog.producer[i]
+        if p is not None and prog.steps[p].name == "mul":
+            cands += prog.steps[p].ins
+    leaky = TRANSFERS["leaky-relu"].numpy_forward
+    for u in dict.fromkeys(cands):
+        if not prog.active[u] or prog.shapes[u] != prog.shapes[v]:
+            continue
+        z, a = np.asarray(prog.values[u]), np.asarray(prog.values[v])
+        if not np.issubdtype(z.dtype, np.floating) or not np.any(z < 0):
+            continue  # without negative entries it cannot be told from the identity or ReLU
+        want = leaky(z)
+        if np.max(np.abs(a - want), initial=0.0) <= _MATCH * (1 + np.max(np.abs(want), initial=0.0)):
+            inner = _block(prog, u, v)
+            if inner is not None:
+                return [("leaky-relu", u, v, k, inner, ())]
+    return []
+
+
 def _transfer_specs(prog: Program) -> list[tuple]:
     """(Mutant without grads, Mutation) for each transfer function and softmax of the trace."""
     sites = []
@@ -214,6 +237,8 @@ def _transfer_specs(prog: Program) -> list[tuple]:
             for p in (0, 1):
                 if consts[1 - p] == 0.0 and prog.active[step.ins[p]]:
                     sites.append(("relu", step.ins[p], step.outs[0], k, frozenset({k}), ()))
+        if step.name in ("select_n", "max"):
+            sites += _leaky_site(prog, k)
     sites += composites
     specs = []
     for fn, u, v, end, inner, axes in sorted(sites, key=lambda s: s[3]):
