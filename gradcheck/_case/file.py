@@ -204,8 +204,8 @@ def _labels(y: np.ndarray, net: NetworkDescription, n: int) -> np.ndarray | None
     return np.eye(net.outputs)[y]
 
 
-def _build(arrays: Mapping[str, np.ndarray], description: Any, source: str | None) -> Case:
-    """Validate the arrays of a case against its description and assemble the :class:`Case`."""
+def _network_of(arrays: Mapping[str, np.ndarray], description: Any) -> NetworkDescription:
+    """The format version checked, and the description (given, or embedded in the archive)."""
     if VERSION not in arrays:
         raise input_error(VERSION, f"an integer array holding the format version {FORMAT_VERSION}",
                           "no such array", f"Add it (any NPY writer: int32, shape (1,)). {_DOC}")
@@ -222,6 +222,11 @@ def _build(arrays: Mapping[str, np.ndarray], description: Any, source: str | Non
     else:
         raise input_error(DESCRIPTION, "the network description (embedded or given as a file)", "neither",
                           f"Store the JSON as a uint8 array {DESCRIPTION!r} or pass description=path. {_DOC}")
+    return net
+
+
+def _check_names(arrays: Mapping[str, np.ndarray], net: NetworkDescription) -> None:
+    """Every array is one the description names, and every parameter and claimed gradient is there."""
     expected = _expected(net)
     for name in arrays:
         if name not in expected:
@@ -239,6 +244,10 @@ def _build(arrays: Mapping[str, np.ndarray], description: Any, source: str | Non
     for name, role in expected.items():
         if name not in arrays and role in roles:
             raise input_error(name, f"an array ({roles[role]})", "no such array", f"Add it to the archive. {_DOC}")
+
+
+def _batch(arrays: Mapping[str, np.ndarray], net: NetworkDescription) -> tuple[np.ndarray, np.ndarray]:
+    """``data/x`` and ``data/y`` checked (integer class labels become one-hot rows)."""
     x, y = arrays["data/x"], arrays["data/y"]
     _real("data/x", x, "inputs")
     if x.ndim != 2 or x.shape[1] != net.inputs or x.shape[0] < 1:
@@ -258,6 +267,12 @@ def _build(arrays: Mapping[str, np.ndarray], description: Any, source: str | Non
                    else f"Write one target row of {net.outputs} values per row of data/x.")
             raise input_error("data/y", f"shape ({n}, {net.outputs})", f"shape {y.shape}", fix)
         _finite("data/y", y)
+    return x, y
+
+
+def _tensors(arrays: Mapping[str, np.ndarray], net: NetworkDescription
+             ) -> tuple[dict[str, dict[str, np.ndarray]], dict[str, dict[str, np.ndarray]]]:
+    """The parameters and the claimed gradients, layer by layer, checked against the description."""
     params: dict[str, dict[str, np.ndarray]] = {}
     grads: dict[str, dict[str, np.ndarray]] = {}
     for layer in net.layers:
@@ -270,10 +285,15 @@ def _build(arrays: Mapping[str, np.ndarray], description: Any, source: str | Non
                 if tensor == "W":
                     _weight(where, value, net, layer.name, role)
                 else:
-                    check_shape(where, value, net.bias_shape(layer.name))
+                    check_shape(where, value, net.bias_shape(layer.name) or ())
                 if role == "param":
                     _finite(where, value)
                 out[layer.name][tensor] = value
+    return params, grads
+
+
+def _deltas(arrays: Mapping[str, np.ndarray], net: NetworkDescription, n: int) -> dict[str, np.ndarray]:
+    """The claimed deltas present, each one row per example and one column per unit."""
     deltas = {}
     sizes = {f"{la.name}.{k}": la.units for la in net.layers for k in "za"}
     for probe in net.probe_names:
@@ -287,6 +307,16 @@ def _build(arrays: Mapping[str, np.ndarray], description: Any, source: str | Non
                        f"Write d loss / d {probe} with one row per example and one column per unit.")
                 raise input_error(where, f"shape ({n}, {sizes[probe]})", f"shape {value.shape}", fix)
             deltas[probe] = value
+    return deltas
+
+
+def _build(arrays: Mapping[str, np.ndarray], description: Any, source: str | None) -> Case:
+    """Validate the arrays of a case against its description and assemble the :class:`Case`."""
+    net = _network_of(arrays, description)
+    _check_names(arrays, net)
+    x, y = _batch(arrays, net)
+    params, grads = _tensors(arrays, net)
+    deltas = _deltas(arrays, net, x.shape[0])
     return Case(params, grads, deltas or None, (x, y), net, NetworkLoss(net), source)
 
 
@@ -331,8 +361,9 @@ def save_case(path: Any, params: Mapping[str, Any], grads: Mapping[str, Any], x:
         deltas: optional ``{probe name: array}`` of claimed deltas.
     """
     net = read_description(description)
-    arrays = {VERSION: np.array([FORMAT_VERSION], dtype=np.int32),
-              DESCRIPTION: np.frombuffer(json.dumps(net.to_mapping()).encode("utf-8"), dtype=np.uint8)}
+    arrays: dict[str, np.ndarray] = {VERSION: np.array([FORMAT_VERSION], dtype=np.int32),
+                                     DESCRIPTION: np.frombuffer(json.dumps(net.to_mapping()).encode("utf-8"),
+                                                                dtype=np.uint8)}
     arrays.update(_layered("params", params))
     arrays.update(_layered("grads", grads))
     arrays["data/x"], arrays["data/y"] = _as_array("x", x), _as_array("y", y)
@@ -342,10 +373,10 @@ def save_case(path: Any, params: Mapping[str, Any], grads: Mapping[str, Any], x:
         arrays.update({f"delta/{k}": _as_array(f"deltas {k}", v) for k, v in deltas.items()})
     _build(arrays, None, None)
     if hasattr(path, "write"):
-        np.savez(path, **arrays)
+        np.savez(path, **arrays)  # type: ignore[arg-type]  # numpy's stub reads **arrays as allow_pickle
         return
     with open(path, "wb") as f:
-        np.savez(f, **arrays)
+        np.savez(f, **arrays)  # type: ignore[arg-type]  # (as above)
 
 
 def load_case(path: Any, description: Any = None) -> Case:

@@ -130,7 +130,7 @@ class NetworkDescription:
     weight_layout: str = "in-by-out"
     bias: str = "per-unit"
     version: int = FORMAT_VERSION
-    _index: dict = field(default=None, init=False, repr=False, compare=False)
+    _index: dict = field(default_factory=dict, init=False, repr=False, compare=False)
 
     def __post_init__(self) -> None:
         w = "description"
@@ -146,7 +146,8 @@ class NetworkDescription:
         if isinstance(self.layers, (str, bytes)) or not isinstance(self.layers, Sequence) or not self.layers:
             raise input_error(f"{w}.layers", "a non-empty list of layers", describe(self.layers),
                               "List the layers from input to output.")
-        resolved, previous = [], inputs
+        resolved: list[LayerDescription] = []
+        previous = inputs
         for i, layer in enumerate(self.layers):
             lw = f"{w}.layers[{i}]"
             if not isinstance(layer, LayerDescription):
@@ -197,14 +198,15 @@ class NetworkDescription:
     def weight_shape(self, name: str) -> tuple[int, int]:
         """Shape of the layer's ``W`` under the network's weight layout."""
         layer = self.layer(name)
+        inputs = int(layer.inputs or 0)  # filled in by __post_init__ for every layer
         if self.weight_layout == "in-by-out":
-            return (layer.inputs, layer.units)
-        return (layer.units, layer.inputs)
+            return (inputs, layer.units)
+        return (layer.units, inputs)
 
     def bias_shape(self, name: str) -> tuple[int, ...] | None:
         """Shape of the layer's ``b``: ``(units,)``, ``(1,)`` when shared, ``None`` when it has none."""
         layer = self.layer(name)
-        return {"per-unit": (layer.units,), "shared": (1,), "none": None}[layer.bias]
+        return {"per-unit": (layer.units,), "shared": (1,), "none": None}[layer.bias or self.bias]
 
     @property
     def probe_plan(self) -> tuple[LayerProbes, ...]:

@@ -19,6 +19,7 @@ Sites (composite forms are recognised by value, robust to the many spellings):
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass, replace
 from typing import Any, Callable, Sequence
 
@@ -95,11 +96,12 @@ def _block(prog: Program, u: int, v: int) -> frozenset | None:
         if i == u or not prog.active[i]:
             reached = reached or i == u
             continue
-        if prog.producer[i] is None:
+        k = prog.producer[i]
+        if k is None:
             return None  # another parameter enters: v is not a function of u alone
-        if prog.producer[i] not in inner:
-            inner.add(prog.producer[i])
-            stack.extend(prog.steps[prog.producer[i]].ins)
+        if k not in inner:
+            inner.add(k)
+            stack.extend(prog.steps[k].ins)
     for k in inner:
         for o in prog.steps[k].outs:
             # consumers without cotangents (masks such as z > 0) do not leak gradient
@@ -114,8 +116,9 @@ def _recognise(prog: Program, u: int, v: int, axes: list[tuple]) -> tuple | None
     if prog.shapes[v] != prog.shapes[u] or not prog.active[u]:
         return None
     z, a = prog.values[u], prog.values[v]
-    tests = [(fn, f, ()) for fn, f in _FORWARD.items()]
-    tests += [(name, lambda x, ax=ax, name=name: _softmax(x, ax, name == "log-softmax"), ax)
+    tests: list[tuple[str, Callable[[np.ndarray], np.ndarray], tuple]] = [
+        (fn, f, ()) for fn, f in _FORWARD.items()]
+    tests += [(name, functools.partial(_softmax, axes=ax, log=name == "log-softmax"), ax)
               for ax in axes[:1] for name in ("softmax", "log-softmax")]
     for fn, f, ax in tests:
         with np.errstate(all="ignore"):
@@ -183,7 +186,7 @@ def _transposed_rule(prog: Program, k: int, w_pos: int, positions: tuple, propag
                 args = [prog.values[x] for x in step.ins]
                 args[w_pos] = args[w_pos].T
 
-                def f(x: Any) -> Any:
+                def f(x: Any, args: list = args) -> Any:
                     full = list(args)
                     full[other] = x
                     return step.primitive.bind(*full, **step.params)
@@ -245,7 +248,8 @@ def _transfer_specs(prog: Program) -> list[tuple]:
         z, a, layer = prog.values[u], prog.values[v], prog.step_layer[end]
         skip = inner - {end}
 
-        def spec(kind: str, d: np.ndarray, where: str, detail: str) -> tuple:
+        def spec(kind: str, d: np.ndarray, where: str, detail: str, u: int = u, layer: Any = layer,
+                 end: int = end, skip: frozenset = skip) -> tuple:
             rule = _multiplier_rule(u, np.asarray(d, dtype=np.float64))
             return Mutant(kind, layer, where, detail, None, ()), Mutation({end: rule}, skip)
         if fn in ("softmax", "log-softmax"):

@@ -49,6 +49,7 @@ from .._core.errors import input_error
 from .._references.autodiff import autodiff_estimate
 from .._references.numerical import EPS64, Estimate
 from .._report.results import ReferenceSummary, TensorResult
+from . import directional
 from .directional import (
     DETECTION,
     DIRECTIONAL_MARGIN,
@@ -60,7 +61,6 @@ from .directional import (
     detectable_norm,
     miss_probability,
 )
-from . import directional
 from .progress import open_bar
 from .runners import ExecutorRunner, SerialRunner
 
@@ -256,7 +256,8 @@ def _notes(plan, cap, default, limit, used, r, seed, live, probes, trusted, sear
             e99 = detectable_norm(taus, t.size)
             share = f" ({e99 / norm:.2g} of the claimed gradient's norm)" if norm > 0 else ""
             notes.append(f"{t.path}: {len(ps)} directional test(s) over all {t.size:,} entries passed; an error of "
-                         f"norm {e99:.2g}{share} or more would have been seen with probability at least {DETECTION:.0%}, "
+                         f"norm {e99:.2g}{share} or more would have been seen with probability at least "
+                         f"{DETECTION:.0%}, "
                          "and one entry off by 1% of the tensor's RMS gradient entry would be missed with probability "
                          f"at most {miss_probability(taus, t.size, 0.01 * norm / math.sqrt(t.size)):.2g}.")
             continue
