@@ -33,11 +33,11 @@ import numpy as np
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
 import gradcheck  # noqa: E402
+from gradcheck._check.inputs import make_plan  # noqa: E402
+from gradcheck._core.precision import steps_for  # noqa: E402
 from gradcheck._references.autodiff import trace  # noqa: E402
 from gradcheck._scale.batched import BatchedRunner  # noqa: E402
 from gradcheck._scale.runners import central_by  # noqa: E402
-from gradcheck._check.inputs import make_plan  # noqa: E402
-from gradcheck._references.numerical import steps_for  # noqa: E402
 
 REPEATS = 3
 

@@ -32,6 +32,7 @@ from .._check.confirm import (
 from .._check.inputs import Plan, claimed_from, make_plan
 from .._check.rounding import Allowance, measure_rounding, rounding_notes
 from .._core.errors import BackpropMismatch, InputError, input_error
+from .._core.precision import EPS64
 from .._core.tree import LayerSpec
 from .._diagnose.signatures import (
     Evidence,
@@ -43,7 +44,6 @@ from .._diagnose.signatures import (
 )
 from .._references.autodiff import Traced, trace
 from .._references.choose import METHODS, check_methods, compute_references
-from .._references.numerical import EPS64
 from .._report.listeners import announce
 from .._report.results import Finding, Report, TensorResult, build_layers
 

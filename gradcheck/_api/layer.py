@@ -30,6 +30,7 @@ from .._check.compare import judge
 from .._check.confirm import confirm_failing
 from .._check.inputs import claimed_from, copy_data, make_plan
 from .._core.errors import InputError, describe, input_error
+from .._core.precision import EPS64
 from .._core.tree import _rebuild, _walk, flatten
 from .._diagnose.signatures import (
     Evidence,
@@ -40,7 +41,6 @@ from .._diagnose.signatures import (
 from .._layers.stress import overlap_notes, resolution_notes, stabiliser_notes
 from .._references.autodiff import accepts_keyword
 from .._references.choose import check_methods, compute_references
-from .._references.numerical import EPS64
 from .._report.listeners import announce
 from .._report.results import (
     Finding,

@@ -16,15 +16,8 @@ from typing import Any
 
 import numpy as np
 
-from .._references.numerical import (
-    COMPLEX_STEP,
-    EPS64,
-    Estimate,
-    complex_step,
-    complex_usable,
-    richardson,
-    rounding_scale,
-)
+from .._core.precision import EPS64, rounding_scale
+from .._references.numerical import COMPLEX_STEP, Estimate, complex_step, complex_usable, richardson
 from .compare import Judgement
 from .inputs import Plan
 

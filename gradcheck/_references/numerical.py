@@ -11,20 +11,14 @@ two references disagree by more than they should.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any, Callable, Sequence
+from typing import Callable, Sequence
 
 import numpy as np
 
-from .._core.errors import describe, input_error
-from .._core.tree import Structure
+from .._core.evaluator import Evaluator
+from .._core.precision import EPS64, ROUNDOFF_SAFETY, rounding_scale, roundoff, steps_for
 
-__all__ = ["Estimate", "Evaluator", "to_scalar", "central", "richardson", "complex_step", "steps_for",
-           "EPS64", "EPS32", "rounding_scale"]
-
-EPS64 = float(np.finfo(np.float64).eps)
-EPS32 = float(np.finfo(np.float32).eps)
-ROUNDOFF_SAFETY = 100.0
-"""How many units of the loss's rounding error one evaluation may carry (sums of many terms round more)."""
+__all__ = ["Estimate", "central", "richardson", "complex_step", "complex_usable", "COMPLEX_STEP"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -44,89 +38,6 @@ class Estimate:
     rtol: float
 
 
-def to_scalar(out: Any, where: str = "loss", allow_complex: bool = False) -> Any:
-    """Turn what a loss returned into a Python float (or complex), or raise InputError.
-
-    Accepts Python floats, 0-d and one-element arrays (numpy or JAX), numpy scalars.
-    """
-    if isinstance(out, float):  # Python floats and numpy float64 scalars: the hot path, no array round trip
-        return float(out)
-    try:
-        arr = np.asarray(out)
-    except Exception as exc:  # a value numpy cannot read at all
-        raise input_error(where, "a scalar loss value", describe(out), "Return a float, e.g. float(total).") from exc
-    if arr.size != 1 or arr.dtype.kind not in "fiuc" or arr.dtype == bool:
-        raise input_error(where, "a scalar loss value", describe(out),
-                          "Reduce the loss to one number (sum or mean over the batch and the outputs).")
-    value = arr.reshape(())[()]
-    if arr.dtype.kind == "c":
-        return complex(value) if allow_complex else float(value.real)
-    return float(value)
-
-
-class Evaluator:
-    """Calls ``loss(tree, *data, **kwargs)`` on private working copies and counts the calls.
-
-    The working arrays ``work`` are perturbed in place by the difference schemes
-    and restored exactly afterwards (the saved value is written back, never
-    ``x + h - h``), so a scheme leaves no drift behind.
-    """
-
-    def __init__(self, loss: Callable, structure: Structure, base: Sequence[np.ndarray], data: tuple,
-                 kwargs: dict | None = None, dtype: Any = np.float64):
-        self.loss = loss
-        self.structure = structure
-        self.base = [np.array(b, dtype=dtype) for b in base]
-        self.work = [b.copy() for b in self.base]
-        self.tree = structure.rebuild([self._leaf_view(i) for i in range(len(self.work))])
-        self.data = data
-        self.kwargs = dict(kwargs or {})
-        self.count = 0
-        self.complex = np.dtype(dtype).kind == "c"
-
-    def _leaf_view(self, i: int) -> Any:
-        return self.work[i] if self.structure.tensors[i].shape else self.work[i].reshape(())
-
-    def __call__(self) -> Any:
-        self.count += 1
-        return to_scalar(self.loss(self.tree, *self.data, **self.kwargs), allow_complex=self.complex)
-
-    def reset(self, k: int | None = None) -> None:
-        """Copy the base point back into the working arrays (all, or tensor ``k``)."""
-        for i in range(len(self.work)) if k is None else (k,):
-            np.copyto(self.work[i], self.base[i])
-
-    def along(self, k: int, direction: np.ndarray, h: float) -> float:
-        """The loss with tensor ``k`` moved to base + h * direction (restored afterwards)."""
-        np.add(self.base[k], h * direction.reshape(self.base[k].shape), out=self.work[k])
-        try:
-            return self()
-        finally:
-            np.copyto(self.work[k], self.base[k])
-
-
-def typical_size(x: np.ndarray) -> float:
-    """The root-mean-square of a tensor's non-zero entries, or 1 when all are zero."""
-    nonzero = np.abs(x[x != 0])
-    return float(np.sqrt(np.mean(nonzero ** 2))) if nonzero.size else 1.0
-
-
-def steps_for(x: np.ndarray, order: int, eps: float) -> np.ndarray:
-    """Per-entry steps that balance truncation against rounding error.
-
-    For a scheme whose truncation error is O(h^order) and whose rounding error is
-    O(eps / h), the total is smallest at h ~ eps^(1 / (order + 1)) (Nocedal &
-    Wright, Numerical Optimization, 2nd ed., section 8.1: h = eps^(1/3) for
-    central differences), times the scale on which the loss varies with that
-    entry. That scale is taken as the entry's magnitude, or the tensor's typical
-    magnitude when the entry is smaller (a zero bias among weights of 0.3; a
-    tensor whose entries are all near 1e-30, where a step of 1e-5 would be
-    absurd).
-    """
-    x = np.asarray(x, dtype=np.float64)
-    return eps ** (1.0 / (order + 1)) * np.maximum(np.abs(x), typical_size(x))
-
-
 def _indices(size: int, wanted: np.ndarray | None) -> np.ndarray:
     return np.arange(size) if wanted is None else np.asarray(wanted, dtype=np.int64)
 
@@ -134,26 +45,6 @@ def _indices(size: int, wanted: np.ndarray | None) -> np.ndarray:
 def _empty_like(ev: Evaluator) -> tuple[list[np.ndarray], list[np.ndarray]]:
     return ([np.full(t.shape, np.nan) for t in ev.structure.tensors],
             [np.full(t.shape, np.inf) for t in ev.structure.tensors])
-
-
-def rounding_scale(f0: float) -> float:
-    """The size of the values a loss of ``f0`` rounds at: ``|f0|``, or 1 when the loss is exactly zero.
-
-    A loss's rounding error is a few units of its last place, which ``|f0|`` measures. A loss that is
-    exactly 0.0 carries no scale of its own: it is almost always made by values that cancel (a fit that is
-    exact to the last bit, ``log(1 + 1e-34)`` rounding to ``log(1)``), and those values round at their own
-    size, taken here to be of order one. Without this, a loss that rounded to zero would claim an
-    infinitely accurate reference of 0 and blame a correct gradient of 1e-34.
-
-    Example:
-        >>> rounding_scale(-2.5), rounding_scale(1e-300), rounding_scale(0.0)
-        (2.5, 1e-300, 1.0)
-    """
-    return abs(f0) if f0 != 0 else 1.0
-
-
-def _roundoff(f0: float, h: np.ndarray, eps: float) -> np.ndarray:
-    return ROUNDOFF_SAFETY * eps * rounding_scale(f0) / h
 
 
 def central(ev: Evaluator, f0: float, wanted: Sequence[np.ndarray | None] | None = None,
@@ -189,7 +80,7 @@ def central(ev: Evaluator, f0: float, wanted: Sequence[np.ndarray | None] | None
             out[i] = (fp - fm) / (up - down)
             if progress is not None:
                 progress(2)
-        err[idx] = _roundoff(f0, h_all[idx], eps)
+        err[idx] = roundoff(f0, h_all[idx], eps)
     return Estimate("central", tuple(values), tuple(atol), rtol=1e-6 if eps <= EPS64 else 1e-2)
 
 
@@ -222,7 +113,7 @@ def richardson(ev: Evaluator, f0: float, wanted: Sequence[np.ndarray | None] | N
             out[i] = (4.0 * d[1] - d[0]) / 3.0
             if progress is not None:
                 progress(4)
-        err[idx] = 3.0 * _roundoff(f0, h_all[idx] / 2, eps)
+        err[idx] = 3.0 * roundoff(f0, h_all[idx] / 2, eps)
     return Estimate("richardson", tuple(values), tuple(atol), rtol=1e-9 if eps <= EPS64 else 1e-3)
 
 

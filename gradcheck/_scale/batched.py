@@ -24,7 +24,7 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
-from .._references.numerical import ROUNDOFF_SAFETY
+from .._core.precision import ROUNDOFF_SAFETY
 from .runners import Entries
 
 __all__ = ["BatchedRunner", "BATCH_BYTES", "MAX_BATCH"]

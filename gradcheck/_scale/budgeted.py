@@ -44,8 +44,9 @@ from .._check.compare import (
     tolerance_for,
 )
 from .._core.errors import describe, input_error
+from .._core.precision import EPS64
 from .._references.autodiff import autodiff_estimate
-from .._references.numerical import EPS64, Estimate
+from .._references.numerical import Estimate
 from .._report.results import ReferenceSummary, TensorResult
 from .directional import (
     DETECTION,

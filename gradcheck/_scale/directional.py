@@ -16,13 +16,7 @@ from typing import Any, Sequence
 import numpy as np
 
 from .._check.compare import relative_error
-from .._references.numerical import (
-    ROUNDOFF_SAFETY,
-    _roundoff,
-    rounding_scale,
-    steps_for,
-    typical_size,
-)
+from .._core.precision import ROUNDOFF_SAFETY, rounding_scale, roundoff, steps_for, typical_size
 from .runners import Entries, Move, raw_direction
 
 __all__ = ["Probe", "miss_probability", "detectable_norm", "MAX_DIRECTIONS", "MAX_LOCATED", "DETECTION"]
@@ -190,7 +184,7 @@ class _Session:
         h = float(steps_for(flat, 2, self.eps)[j])
         up, down = flat[j] + h, flat[j] - h
         fp, fm = self.runner([Entries(k, np.array([j]), np.array([up])), Entries(k, np.array([j]), np.array([down]))])
-        return float((fp - fm) / (up - down)), float(_roundoff(self.plan.f0, np.array([h]), self.eps)[0])
+        return float((fp - fm) / (up - down)), float(roundoff(self.plan.f0, np.array([h]), self.eps)[0])
 
 
 @dataclass

@@ -25,18 +25,9 @@ from typing import Any, Callable, NamedTuple, Sequence, Union
 import numpy as np
 
 from .._core.errors import InputError, input_error
-from .._references.numerical import (
-    COMPLEX_STEP,
-    EPS64,
-    ROUNDOFF_SAFETY,
-    Estimate,
-    Evaluator,
-    _roundoff,
-    central,
-    richardson,
-    rounding_scale,
-    steps_for,
-)
+from .._core.evaluator import Evaluator
+from .._core.precision import EPS64, ROUNDOFF_SAFETY, rounding_scale, roundoff, steps_for
+from .._references.numerical import COMPLEX_STEP, Estimate, central, richardson
 from .progress import open_bar
 
 __all__ = ["Entries", "Move", "raw_direction", "unit_direction", "evaluate_chunk", "SerialRunner",
@@ -309,7 +300,7 @@ def central_by(run: Callable, plan: Any, eps: float = EPS64, wanted: Sequence[np
     """Central differences through a runner: the same steps and arithmetic as ``_numerical.central``."""
     parts, values, atol = _differences(run, plan, eps, wanted, 2, (1.0,))
     for k, idx, h, (d,) in parts:
-        values[k].reshape(-1)[idx], atol[k].reshape(-1)[idx] = d, _roundoff(plan.f0, h, eps)
+        values[k].reshape(-1)[idx], atol[k].reshape(-1)[idx] = d, roundoff(plan.f0, h, eps)
     return Estimate("central", tuple(values), tuple(atol), rtol=1e-6 if eps <= EPS64 else 1e-2)
 
 
@@ -319,7 +310,7 @@ def richardson_by(run: Callable, plan: Any, eps: float = EPS64,
     parts, values, atol = _differences(run, plan, eps, wanted, 4, (1.0, 0.5))
     for k, idx, h, (d1, d2) in parts:
         values[k].reshape(-1)[idx] = (4.0 * d2 - d1) / 3.0
-        atol[k].reshape(-1)[idx] = 3.0 * _roundoff(plan.f0, h / 2, eps)
+        atol[k].reshape(-1)[idx] = 3.0 * roundoff(plan.f0, h / 2, eps)
     return Estimate("richardson", tuple(values), tuple(atol), rtol=1e-9 if eps <= EPS64 else 1e-3)
 
 
