@@ -18,12 +18,20 @@ import numpy as np
 import pytest
 
 import gradcheck
+from gradcheck._check.inputs import make_plan
 from gradcheck._core.errors import InputError
 from gradcheck._references.numerical import central, complex_step, richardson
-from gradcheck._scale.runners import (Entries, ExecutorRunner, Move, SerialRunner, _split, central_by, complex_by,
-                                 entrywise_references, raw_direction, richardson_by, unit_direction, worker_count)
-from gradcheck._check.inputs import make_plan
+from gradcheck._scale.perturbations import Entries, Move, raw_direction, unit_direction
 from gradcheck._scale.progress import ProgressBar, open_bar
+from gradcheck._scale.runners import (
+    SerialRunner,
+    _split,
+    central_by,
+    complex_by,
+    entrywise_references,
+    richardson_by,
+    worker_count,
+)
 
 
 def mlp_loss(p, x, y):

@@ -25,7 +25,7 @@ from typing import Any, Callable, Sequence
 import numpy as np
 
 from .._core.precision import ROUNDOFF_SAFETY
-from .runners import Entries
+from .perturbations import Entries
 
 __all__ = ["BatchedRunner", "BATCH_BYTES", "MAX_BATCH"]
 
@@ -44,7 +44,7 @@ def _jax():
 
 
 class BatchedRunner:
-    """Evaluates :class:`~gradcheck._scale.runners.Entries` perturbations with a vectorised, compiled loss.
+    """Evaluates :class:`~gradcheck._scale.perturbations.Entries` perturbations with a vectorised, compiled loss.
 
     Args:
         traced: the loss as a JAX function of its leaves (``_autodiff.Traced``).

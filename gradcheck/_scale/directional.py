@@ -17,7 +17,7 @@ import numpy as np
 
 from .._check.compare import relative_error
 from .._core.precision import ROUNDOFF_SAFETY, rounding_scale, roundoff, steps_for, typical_size
-from .runners import Entries, Move, raw_direction
+from .perturbations import Entries, Move, raw_direction
 
 __all__ = ["Probe", "miss_probability", "detectable_norm", "MAX_DIRECTIONS", "MAX_LOCATED", "DETECTION"]
 

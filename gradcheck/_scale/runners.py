@@ -1,11 +1,7 @@
 """Evaluating the loss at many perturbed points: in this process, or farmed out to an executor.
 
-Every difference scheme is written here as a list of *perturbations* and a rule combining the loss values:
-
-* :class:`Entries` sets entries of one tensor to given values, one evaluation per entry (central
-  differences, Richardson extrapolation, the complex step);
-* :class:`Move` moves a contiguous range of one tensor's entries along a random unit direction named by a
-  key (directional checks); the direction is drawn again wherever it is needed, never shipped.
+Every difference scheme is written as a list of *perturbations* (``perturbations.Entries`` and
+``perturbations.Move``) and a rule combining the loss values; a runner evaluates the list.
 
 One function, :func:`evaluate_chunk`, evaluates a chunk here or in a worker: it copies the base point, sets
 each perturbation, calls the loss and restores the saved value. Serial and parallel runs do the same
@@ -20,7 +16,7 @@ import math
 import os
 import pickle
 from concurrent.futures import Executor, ProcessPoolExecutor, as_completed
-from typing import Any, Callable, NamedTuple, Sequence, Union
+from typing import Any, Callable, Sequence
 
 import numpy as np
 
@@ -28,13 +24,10 @@ from .._core.errors import InputError, input_error
 from .._core.evaluator import Evaluator
 from .._core.precision import EPS64, ROUNDOFF_SAFETY, rounding_scale, roundoff, steps_for
 from .._references.numerical import COMPLEX_STEP, Estimate, central, richardson
+from .perturbations import Block, Entries, Move, size_of, unit_direction
 from .progress import open_bar
 
-__all__ = ["Entries", "Move", "raw_direction", "unit_direction", "evaluate_chunk", "SerialRunner",
-           "ExecutorRunner", "central_by", "richardson_by", "complex_by", "entrywise_references", "worker_count"]
-
-DIRECTION_BLOCK = 4096
-"""Entries per independently seeded block of a random direction (any sub-range is drawn without the rest)."""
+__all__ = ["evaluate_chunk", "SerialRunner", "ExecutorRunner", "central_by", "richardson_by", "complex_by", "entrywise_references", "worker_count"]
 
 CHUNKS_PER_WORKER = 4
 """Chunks per worker: enough to balance uneven workers and to move the progress bar, few enough that
@@ -52,55 +45,6 @@ BATCHED_ON_CPU = False
 (benchmarks/bench_scale.py), XLA's float64 forward pass of a 10,000-parameter MLP costs the same per copy as
 numpy's (about 15 us), so vectorising saves nothing and compiling costs 0.2 to 1 s: the Python loop is
 faster there. On an accelerator the copies run in parallel and the route pays."""
-
-
-class Entries(NamedTuple):
-    """Set entry ``index[j]`` (flat) of tensor ``k`` to ``value[j]``: one evaluation per j."""
-
-    k: int
-    index: np.ndarray
-    value: np.ndarray
-
-
-class Move(NamedTuple):
-    """Move flat entries ``lo:hi`` of tensor ``k`` by ``step`` times the unit direction ``key``: one evaluation."""
-
-    k: int
-    key: tuple
-    lo: int
-    hi: int
-    step: float
-
-
-Block = Union[Entries, Move]
-
-
-def _size(block: Block) -> int:
-    return 1 if isinstance(block, Move) else int(block.index.size)
-
-
-def raw_direction(key: tuple, lo: int, hi: int) -> np.ndarray:
-    """Entries ``lo:hi`` of the standard-normal vector named ``key``.
-
-    Block ``b`` (entries ``4096 b`` to ``4096 b + 4095``) always comes from the
-    generator seeded with ``(*key, b)``, so a sub-range is the same numbers
-    whichever range it is drawn as part of, and costs only its own blocks.
-
-    Example:
-        >>> whole = raw_direction((0, 1, 2), 0, 10000)
-        >>> bool(np.array_equal(raw_direction((0, 1, 2), 5000, 5003), whole[5000:5003]))
-        True
-    """
-    first, last = lo // DIRECTION_BLOCK, (hi - 1) // DIRECTION_BLOCK
-    parts = [np.random.default_rng([*key, b]).standard_normal(DIRECTION_BLOCK) for b in range(first, last + 1)]
-    start = lo - first * DIRECTION_BLOCK
-    return np.concatenate(parts)[start:start + (hi - lo)]
-
-
-def unit_direction(key: tuple, lo: int, hi: int) -> np.ndarray:
-    """:func:`raw_direction` scaled to unit length: uniform on the sphere of the range's entries."""
-    z = raw_direction(key, lo, hi)
-    return z / max(float(np.linalg.norm(z)), 1e-300)
 
 
 class _Point:
@@ -137,7 +81,7 @@ class _Point:
                     finally:
                         flat[i] = x
             if progress is not None:
-                progress(_size(block))
+                progress(size_of(block))
         return np.array(out)
 
 
@@ -166,13 +110,13 @@ def worker_count(executor: Executor) -> int:
 
 def _split(blocks: Sequence[Block], parts: int) -> list[list[Block]]:
     """Cut the blocks into at most ``parts`` chunks of nearly equal numbers of evaluations, in order."""
-    total = sum(_size(b) for b in blocks)
+    total = sum(size_of(b) for b in blocks)
     target = max(1, math.ceil(total / max(parts, 1)))
     chunks: list[list[Block]] = []
     current: list[Block] = []
     room = target
     for block in blocks:
-        while _size(block) > 0:
+        while size_of(block) > 0:
             if room == 0:
                 chunks.append(current)
                 current, room = [], target
@@ -242,7 +186,7 @@ class ExecutorRunner:
         self.count = 0
 
     def __call__(self, blocks: Sequence[Block]) -> np.ndarray:
-        total = sum(_size(b) for b in blocks)
+        total = sum(size_of(b) for b in blocks)
         if total == 0:
             return np.array([])
         # Several chunks per worker for balance, but no more chunks than quarter-lists: each chunk ships the params.
