@@ -36,8 +36,8 @@ import gradcheck  # noqa: E402
 from gradcheck._check.inputs import make_plan  # noqa: E402
 from gradcheck._core.precision import steps_for  # noqa: E402
 from gradcheck._references.autodiff import trace  # noqa: E402
+from gradcheck._references.finite_difference import central_by  # noqa: E402
 from gradcheck._scale.batched import BatchedRunner  # noqa: E402
-from gradcheck._scale.runners import central_by  # noqa: E402
 
 REPEATS = 3
 

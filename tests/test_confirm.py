@@ -15,7 +15,7 @@ from gradcheck._check.confirm import measure_noise, widen_for_noise
 from gradcheck._check.inputs import make_plan
 from gradcheck._core.evaluator import Evaluator
 from gradcheck._core.precision import EPS64
-from gradcheck._references.numerical import central
+from gradcheck._references.finite_difference import central
 
 W = np.array([0.3, -1.2, 2.0, 0.7])
 

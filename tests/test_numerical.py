@@ -10,7 +10,7 @@ import gradcheck
 from gradcheck._core.evaluator import Evaluator
 from gradcheck._core.precision import EPS64, steps_for
 from gradcheck._core.tree import flatten
-from gradcheck._references.numerical import central, complex_step, complex_usable, richardson
+from gradcheck._references.finite_difference import central, complex_step, complex_usable, richardson
 
 
 def squire_trapp(p, xp=np):

@@ -24,7 +24,7 @@ from typing import Sequence
 import numpy as np
 
 from .._core.tree import Structure
-from .._references.numerical import Estimate
+from .._references.finite_difference import Estimate
 from .._report.results import ReferenceSummary, TensorResult
 
 __all__ = ["Judgement", "tolerance_for", "relative_error", "disagreement", "judge"]

@@ -17,7 +17,14 @@ from typing import Any
 import numpy as np
 
 from .._core.precision import EPS64, rounding_scale
-from .._references.numerical import COMPLEX_STEP, Estimate, complex_step, complex_usable, richardson
+from .._references.finite_difference import (
+    COMPLEX_STEP,
+    Estimate,
+    central_along,
+    complex_step,
+    complex_usable,
+    richardson,
+)
 from .compare import Judgement
 from .inputs import Plan
 
@@ -50,7 +57,7 @@ def _complex_is_analytic(plan: Plan, cev: Any, seed: int) -> tuple[bool, int]:
         v = rng.standard_normal(b.shape)
         v /= max(float(np.linalg.norm(v)), 1e-300)
         h = EPS64 ** (1 / 3) * max(float(np.max(np.abs(b), initial=0.0)), 1.0)
-        num = (ev.along(k, v, h) - ev.along(k, v, -h)) / (2 * h)
+        num = central_along(ev, k, v, h)
         cev.work[k][...] = cev.base[k] + 1j * COMPLEX_STEP * v.reshape(b.shape)
         try:
             exact = complex(cev()).imag / COMPLEX_STEP

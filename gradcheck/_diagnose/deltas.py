@@ -24,7 +24,7 @@ from .._check.inputs import Plan, copy_data
 from .._core.errors import input_error
 from .._core.tree import flatten, flatten_like
 from .._references.autodiff import accepts_keyword, autodiff_estimate, trace
-from .._references.numerical import central
+from .._references.finite_difference import central
 from .._report.results import Finding, TensorResult
 from .delta_factors import factor_findings
 from .signatures import Evidence, tensor_findings

@@ -23,7 +23,7 @@ import numpy as np
 
 from .._core.precision import EPS64, ROUNDOFF_SAFETY, rounding_scale
 from .._core.tree import Structure
-from .numerical import Estimate
+from .finite_difference import Estimate
 
 __all__ = ["Traced", "accepts_keyword", "trace", "autodiff_estimate"]
 

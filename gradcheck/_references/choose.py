@@ -17,7 +17,7 @@ from .._check.inputs import Plan
 from .._core.errors import input_error
 from .._core.precision import EPS64
 from .autodiff import Traced, autodiff_estimate, trace
-from .numerical import Estimate, complex_usable
+from .finite_difference import Estimate, complex_usable
 
 __all__ = ["METHODS", "check_methods", "compute_references"]
 

@@ -5,7 +5,7 @@ central differences or Richardson extrapolation need are computed by one
 compiled, vectorised function (``jax.vmap`` over perturbations) per chunk,
 instead of one Python call per point. Every value is still a genuine
 evaluation of the loss at a perturbed point, so the result is a numerical
-reference with the same steps as the Python loop (``_numerical``); it differs
+reference with the same steps as the Python loop (``_references.finite_difference``); it differs
 from the loop's only by the rounding of the loss itself, since XLA may sum in
 another order than numpy.
 

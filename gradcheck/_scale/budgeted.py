@@ -46,7 +46,7 @@ from .._check.compare import (
 from .._core.errors import describe, input_error
 from .._core.precision import EPS64
 from .._references.autodiff import autodiff_estimate
-from .._references.numerical import Estimate
+from .._references.finite_difference import Estimate
 from .._report.results import ReferenceSummary, TensorResult
 from .directional import (
     DETECTION,

@@ -16,8 +16,9 @@ from typing import Any, Sequence
 import numpy as np
 
 from .._check.compare import relative_error
-from .._core.precision import ROUNDOFF_SAFETY, rounding_scale, roundoff, steps_for, typical_size
-from .perturbations import Entries, Move, raw_direction
+from .._core.precision import ROUNDOFF_SAFETY, rounding_scale, typical_size
+from .._references.finite_difference import central_entry
+from .perturbations import Move, raw_direction
 
 __all__ = ["Probe", "miss_probability", "detectable_norm", "MAX_DIRECTIONS", "MAX_LOCATED", "DETECTION"]
 
@@ -180,11 +181,7 @@ class _Session:
 
     def entry(self, k: int, j: int) -> tuple[float, float]:
         """Central difference at flat entry ``j`` of tensor ``k`` (two evaluations): value and accuracy."""
-        flat = self.plan.base[k].reshape(-1)
-        h = float(steps_for(flat, 2, self.eps)[j])
-        up, down = flat[j] + h, flat[j] - h
-        fp, fm = self.runner([Entries(k, np.array([j]), np.array([up])), Entries(k, np.array([j]), np.array([down]))])
-        return float((fp - fm) / (up - down)), float(roundoff(self.plan.f0, np.array([h]), self.eps)[0])
+        return central_entry(self.runner, self.plan, k, j, self.eps)
 
 
 @dataclass

@@ -15,11 +15,12 @@ batched runners can all depend on it without depending on each other.
 
 from __future__ import annotations
 
-from typing import NamedTuple, Union
+from typing import Any, Callable, NamedTuple, Sequence, Union
 
 import numpy as np
 
-__all__ = ["Entries", "Move", "Block", "size_of", "raw_direction", "unit_direction", "DIRECTION_BLOCK"]
+__all__ = ["Entries", "Move", "Block", "size_of", "raw_direction", "unit_direction", "DIRECTION_BLOCK",
+           "Directions", "evaluate"]
 
 DIRECTION_BLOCK = 4096
 """Entries per independently seeded block of a random direction (any sub-range is drawn without the rest)."""
@@ -73,3 +74,51 @@ def unit_direction(key: tuple, lo: int, hi: int) -> np.ndarray:
     """:func:`raw_direction` scaled to unit length: uniform on the sphere of the range's entries."""
     z = raw_direction(key, lo, hi)
     return z / max(float(np.linalg.norm(z)), 1e-300)
+
+
+class Directions:
+    """The last unit direction drawn, kept because the +h and -h moves of one test share it."""
+
+    def __init__(self) -> None:
+        self._last: tuple = (None, None)
+
+    def __call__(self, key: tuple, lo: int, hi: int) -> np.ndarray:
+        if self._last[0] != (key, lo, hi):
+            self._last = ((key, lo, hi), unit_direction(key, lo, hi))
+        return self._last[1]
+
+
+def evaluate(ev: Any, blocks: Sequence[Block], progress: Callable[[int], None] | None = None,
+             directions: Directions | None = None) -> np.ndarray:
+    """The loss at each perturbation of ``blocks``, in order, on the working copies of Evaluator ``ev``.
+
+    Each perturbation writes its values into ``ev.work`` and the saved values are written back afterwards,
+    even when the loss raises, so the working copies always return to the base point exactly.
+    ``progress``, when given, is called with 1 after each evaluation.
+    """
+    directions = directions or Directions()
+    out = []
+    for block in blocks:
+        if isinstance(block, Move):
+            seg = ev.work[block.k].reshape(-1)[block.lo:block.hi]
+            base = ev.base[block.k].reshape(-1)[block.lo:block.hi]
+            np.add(base, block.step * directions(block.key, block.lo, block.hi), out=seg)
+            try:
+                out.append(ev())
+            finally:
+                np.copyto(seg, base)
+        else:
+            flat = ev.work[block.k].reshape(-1)
+            for i, v in zip(block.index.tolist(), block.value.tolist()):
+                x = flat[i]
+                flat[i] = v
+                try:
+                    out.append(ev())
+                finally:
+                    flat[i] = x
+                if progress is not None:
+                    progress(1)
+            continue
+        if progress is not None:
+            progress(1)
+    return np.array(out)

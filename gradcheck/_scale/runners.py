@@ -22,12 +22,11 @@ import numpy as np
 
 from .._core.errors import InputError, input_error
 from .._core.evaluator import Evaluator
-from .._core.precision import EPS64, ROUNDOFF_SAFETY, rounding_scale, roundoff, steps_for
-from .._references.numerical import COMPLEX_STEP, Estimate, central, richardson
-from .perturbations import Block, Entries, Move, size_of, unit_direction
+from .._references.finite_difference import Estimate, central_by, complex_by, richardson_by
+from .perturbations import Block, Directions, Entries, Move, evaluate, size_of
 from .progress import open_bar
 
-__all__ = ["evaluate_chunk", "SerialRunner", "ExecutorRunner", "central_by", "richardson_by", "complex_by", "entrywise_references", "worker_count"]
+__all__ = ["evaluate_chunk", "SerialRunner", "ExecutorRunner", "entrywise_references", "worker_count"]
 
 CHUNKS_PER_WORKER = 4
 """Chunks per worker: enough to balance uneven workers and to move the progress bar, few enough that
@@ -53,36 +52,10 @@ class _Point:
     def __init__(self, loss: Callable, structure: Any, base: Sequence[np.ndarray], data: tuple, kwargs: dict,
                  dtype: Any):
         self.ev = Evaluator(loss, structure, base, data, kwargs, dtype=dtype)
-        self._direction: tuple = (None, None)
-
-    def _unit(self, key: tuple, lo: int, hi: int) -> np.ndarray:
-        if self._direction[0] != (key, lo, hi):  # the +h and -h moves of one test share a direction
-            self._direction = ((key, lo, hi), unit_direction(key, lo, hi))
-        return self._direction[1]
+        self.directions = Directions()
 
     def run(self, blocks: Sequence[Block], progress: Callable[[int], None] | None = None) -> np.ndarray:
-        ev, out = self.ev, []
-        for block in blocks:
-            if isinstance(block, Move):
-                seg = ev.work[block.k].reshape(-1)[block.lo:block.hi]
-                base = ev.base[block.k].reshape(-1)[block.lo:block.hi]
-                np.add(base, block.step * self._unit(block.key, block.lo, block.hi), out=seg)
-                try:
-                    out.append(ev())
-                finally:
-                    np.copyto(seg, base)
-            else:
-                flat = ev.work[block.k].reshape(-1)
-                for i, v in zip(block.index.tolist(), block.value.tolist()):
-                    x = flat[i]
-                    flat[i] = v
-                    try:
-                        out.append(ev())
-                    finally:
-                        flat[i] = x
-            if progress is not None:
-                progress(size_of(block))
-        return np.array(out)
+        return evaluate(self.ev, blocks, progress, self.directions)
 
 
 def evaluate_chunk(payload: tuple, blocks: Sequence[Block]) -> np.ndarray:
@@ -214,73 +187,6 @@ class ExecutorRunner:
         return np.concatenate(results)
 
 
-def _differences(run: Callable, plan: Any, eps: float, wanted: Sequence[np.ndarray | None] | None, order: int,
-                 fractions: Sequence[float]) -> tuple[list, list[np.ndarray], list[np.ndarray]]:
-    """Per tensor: its entries, steps, and the central differences at each fraction of the step.
-
-    The steps and the arithmetic are those of the loops in ``_numerical`` (the divisor is the step really
-    taken, ``(x + h) - (x - h)``), so a serial runner reproduces them bit for bit.
-    """
-    parts = []
-    for k, b in enumerate(plan.base):
-        flat = b.reshape(-1)
-        idx = np.arange(flat.size) if wanted is None or wanted[k] is None else np.asarray(wanted[k], np.int64)
-        parts.append((k, idx, flat[idx], steps_for(flat, order, eps)[idx]))
-    f = run([Entries(k, idx, x + sign * h * q) for k, idx, x, h in parts for q in fractions for sign in (1.0, -1.0)])
-    out, at = [], 0
-    for k, idx, x, h in parts:
-        ds = []
-        for q in fractions:  # h * q is exact: q is 1 or 1/2
-            hq, n = h * q, idx.size
-            ds.append((f[at:at + n] - f[at + n:at + 2 * n]) / ((x + hq) - (x - hq)))
-            at += 2 * n
-        out.append(ds)
-    values = [np.full(t.shape, np.nan) for t in plan.structure.tensors]
-    atol = [np.full(t.shape, np.inf) for t in plan.structure.tensors]
-    return [(k, idx, h, ds) for (k, idx, _, h), ds in zip(parts, out)], values, atol
-
-
-def central_by(run: Callable, plan: Any, eps: float = EPS64, wanted: Sequence[np.ndarray | None] | None = None) -> Estimate:
-    """Central differences through a runner: the same steps and arithmetic as ``_numerical.central``."""
-    parts, values, atol = _differences(run, plan, eps, wanted, 2, (1.0,))
-    for k, idx, h, (d,) in parts:
-        values[k].reshape(-1)[idx], atol[k].reshape(-1)[idx] = d, roundoff(plan.f0, h, eps)
-    return Estimate("central", tuple(values), tuple(atol), rtol=1e-6 if eps <= EPS64 else 1e-2)
-
-
-def richardson_by(run: Callable, plan: Any, eps: float = EPS64,
-                  wanted: Sequence[np.ndarray | None] | None = None) -> Estimate:
-    """Richardson extrapolation through a runner: the same steps and arithmetic as ``_numerical.richardson``."""
-    parts, values, atol = _differences(run, plan, eps, wanted, 4, (1.0, 0.5))
-    for k, idx, h, (d1, d2) in parts:
-        values[k].reshape(-1)[idx] = (4.0 * d2 - d1) / 3.0
-        atol[k].reshape(-1)[idx] = 3.0 * roundoff(plan.f0, h / 2, eps)
-    return Estimate("richardson", tuple(values), tuple(atol), rtol=1e-9 if eps <= EPS64 else 1e-3)
-
-
-def complex_by(run: Callable, plan: Any) -> Estimate:
-    """The complex step through a runner on complex128 copies: the arithmetic of ``_numerical.complex_step``."""
-    values = [np.full(t.shape, np.nan) for t in plan.structure.tensors]
-    atol = [np.full(t.shape, np.inf) for t in plan.structure.tensors]
-    blocks, parts = [], []
-    for k, b in enumerate(plan.base):
-        flat = b.reshape(-1)
-        scale = np.maximum(np.abs(flat), 1.0)
-        h = COMPLEX_STEP * scale
-        moved = np.empty(flat.size, dtype=np.complex128)
-        moved.real, moved.imag = flat, h
-        blocks.append(Entries(k, np.arange(flat.size), moved))
-        parts.append((k, h, scale))
-    f = run(blocks)
-    at = 0
-    for k, h, scale in parts:
-        n = h.size
-        values[k].reshape(-1)[:] = np.imag(f[at:at + n]) / h
-        atol[k].reshape(-1)[:] = ROUNDOFF_SAFETY * EPS64 * rounding_scale(plan.f0) / scale
-        at += n
-    return Estimate("complex", tuple(values), tuple(atol), rtol=1e-11)
-
-
 _COST = {"richardson": 4, "central": 2}
 
 
@@ -299,8 +205,8 @@ def entrywise_references(plan: Any, methods: Sequence[str], eps: float, executor
     that JAX can trace is evaluated in vectorised chunks (``_batched``) when
     that pays (an accelerator, see :data:`BATCHED_ON_CPU`; enough evaluations to
     repay compiling) and the traced loss agrees with the loss itself at the base
-    point; otherwise the plain Python loop of ``_numerical`` runs. Returns the estimates (in ``methods`` order) and the
-    number of loss evaluations spent.
+    point; otherwise a serial runner evaluates them here. Returns the estimates (in ``methods`` order) and
+    the number of loss evaluations spent.
     """
     methods = [m for m in methods if m in _COST]
     if not methods:
@@ -323,10 +229,9 @@ def entrywise_references(plan: Any, methods: Sequence[str], eps: float, executor
         if runner is not None:
             estimates = [schemes[m](runner, plan, eps) for m in methods]
             return estimates, spent + runner.count
-        ev = plan.evaluator()
-        serial = {"central": central, "richardson": richardson}
-        estimates = [serial[m](ev, plan.f0, eps=eps, progress=bar.callback) for m in methods]
-        return estimates, spent + ev.count
+        runner = SerialRunner(plan, progress=bar.callback)
+        estimates = [schemes[m](runner, plan, eps) for m in methods]
+        return estimates, spent + runner.count
     finally:
         bar.close()
 
