@@ -24,6 +24,7 @@ import numpy as np
 from .._core.precision import EPS64, ROUNDOFF_SAFETY, rounding_scale
 from .._core.tree import Structure
 from .finite_difference import Estimate
+from .registry import accuracy
 
 __all__ = ["Traced", "accepts_keyword", "trace", "autodiff_estimate"]
 
@@ -134,4 +135,4 @@ def autodiff_estimate(traced: Traced, base: Sequence[np.ndarray], f0: float) -> 
     if not all(np.all(np.isfinite(v)) for v in values):
         return "autodiff returned NaN or Inf (a non-differentiable operation such as sqrt at 0)"
     atol = tuple(ROUNDOFF_SAFETY * EPS64 * rounding_scale(f0) / np.maximum(np.abs(b), 1.0) for b in base)
-    return Estimate("autodiff", values, atol, rtol=1e-12)
+    return Estimate("autodiff", values, atol, rtol=accuracy("autodiff"))

@@ -19,6 +19,7 @@ import numpy as np
 from .._core.evaluator import Evaluator
 from .._core.precision import EPS64, ROUNDOFF_SAFETY, rounding_scale, roundoff, steps_for
 from .._scale.perturbations import Block, Directions, Entries, evaluate
+from .registry import accuracy
 
 __all__ = ["Estimate", "At", "on_evaluator", "central_by", "richardson_by", "complex_by", "central_entry",
            "central_along", "central", "richardson", "complex_step", "complex_usable", "COMPLEX_STEP"]
@@ -39,15 +40,6 @@ class Estimate:
     values: tuple[np.ndarray, ...]
     atol: tuple[np.ndarray, ...]
     rtol: float
-
-
-def _indices(size: int, wanted: np.ndarray | None) -> np.ndarray:
-    return np.arange(size) if wanted is None else np.asarray(wanted, dtype=np.int64)
-
-
-def _empty_like(ev: Evaluator) -> tuple[list[np.ndarray], list[np.ndarray]]:
-    return ([np.full(t.shape, np.nan) for t in ev.structure.tensors],
-            [np.full(t.shape, np.inf) for t in ev.structure.tensors])
 
 
 class At(NamedTuple):
@@ -111,7 +103,7 @@ def central_by(run: Callable, plan: Any, eps: float = EPS64,
     parts, values, atol = _differences(run, plan, eps, wanted, 2, (1.0,))
     for k, idx, h, (d,) in parts:
         values[k].reshape(-1)[idx], atol[k].reshape(-1)[idx] = d, roundoff(plan.f0, h, eps)
-    return Estimate("central", tuple(values), tuple(atol), rtol=1e-6 if eps <= EPS64 else 1e-2)
+    return Estimate("central", tuple(values), tuple(atol), rtol=accuracy("central", eps))
 
 
 def richardson_by(run: Callable, plan: Any, eps: float = EPS64,
@@ -126,7 +118,7 @@ def richardson_by(run: Callable, plan: Any, eps: float = EPS64,
     for k, idx, h, (d1, d2) in parts:
         values[k].reshape(-1)[idx] = (4.0 * d2 - d1) / 3.0
         atol[k].reshape(-1)[idx] = 3.0 * roundoff(plan.f0, h / 2, eps)
-    return Estimate("richardson", tuple(values), tuple(atol), rtol=1e-9 if eps <= EPS64 else 1e-3)
+    return Estimate("richardson", tuple(values), tuple(atol), rtol=accuracy("richardson", eps))
 
 
 def complex_by(run: Callable, plan: Any, wanted: Sequence[np.ndarray | None] | None = None) -> Estimate:
@@ -155,7 +147,7 @@ def complex_by(run: Callable, plan: Any, wanted: Sequence[np.ndarray | None] | N
         values[k].reshape(-1)[idx] = np.imag(f[at:at + n]) / h
         atol[k].reshape(-1)[idx] = ROUNDOFF_SAFETY * EPS64 * rounding_scale(plan.f0) / scale
         at += n
-    return Estimate("complex", tuple(values), tuple(atol), rtol=1e-11)
+    return Estimate("complex", tuple(values), tuple(atol), rtol=accuracy("complex"))
 
 
 COMPLEX_STEP = 1e-20

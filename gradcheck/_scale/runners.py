@@ -23,6 +23,7 @@ import numpy as np
 from .._core.errors import InputError, input_error
 from .._core.evaluator import Evaluator
 from .._references.finite_difference import Estimate, central_by, complex_by, richardson_by
+from .._references.registry import evaluations_per_entry
 from .perturbations import Block, Directions, Entries, Move, evaluate, size_of
 from .progress import open_bar
 
@@ -187,7 +188,6 @@ class ExecutorRunner:
         return np.concatenate(results)
 
 
-_COST = {"richardson": 4, "central": 2}
 
 
 def _vectorising_pays() -> bool:
@@ -208,10 +208,10 @@ def entrywise_references(plan: Any, methods: Sequence[str], eps: float, executor
     point; otherwise a serial runner evaluates them here. Returns the estimates (in ``methods`` order) and
     the number of loss evaluations spent.
     """
-    methods = [m for m in methods if m in _COST]
+    methods = [m for m in methods if m in ("richardson", "central")]
     if not methods:
         return [], 0
-    total = sum(_COST[m] for m in methods) * plan.structure.size
+    total = sum(evaluations_per_entry(m) for m in methods) * plan.structure.size
     bar = open_bar(progress, total, "gradcheck: " + " and ".join(m + " differences" if m == "central" else m
                                                                    for m in methods))
     schemes = {"central": central_by, "richardson": richardson_by}
