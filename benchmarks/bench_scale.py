@@ -125,7 +125,7 @@ def overhead_figures():
               f"gradcheck.examine ({report.evaluations:,} evaluations) {check:.3f} s")
         print(f"   overhead ratio: {ratio:.3f}  (target at most 1.10: {'met' if ratio <= 1.10 else 'NOT met'})")
         loops.append(loop)
-    print("   (both return types take _numerical.to_scalar's fast path; a numpy float64 is a Python float)")
+    print("   (both return types take _core.evaluator.to_scalar's fast path; a numpy float64 is a Python float)")
     return loops[0]
 
 
