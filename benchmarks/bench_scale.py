@@ -33,11 +33,11 @@ import numpy as np
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
 import gradcheck  # noqa: E402
-from gradcheck._references.autodiff import trace  # noqa: E402
-from gradcheck._scale.batched import BatchedRunner  # noqa: E402
-from gradcheck._scale.runners import central_by  # noqa: E402
 from gradcheck._check.inputs import make_plan  # noqa: E402
-from gradcheck._references.numerical import steps_for  # noqa: E402
+from gradcheck._core.precision import steps_for  # noqa: E402
+from gradcheck._references.autodiff import trace  # noqa: E402
+from gradcheck._references.finite_difference import central_by  # noqa: E402
+from gradcheck._scale.batched import BatchedRunner  # noqa: E402
 
 REPEATS = 3
 
@@ -125,7 +125,7 @@ def overhead_figures():
               f"gradcheck.examine ({report.evaluations:,} evaluations) {check:.3f} s")
         print(f"   overhead ratio: {ratio:.3f}  (target at most 1.10: {'met' if ratio <= 1.10 else 'NOT met'})")
         loops.append(loop)
-    print("   (both return types take _numerical.to_scalar's fast path; a numpy float64 is a Python float)")
+    print("   (both return types take _core.evaluator.to_scalar's fast path; a numpy float64 is a Python float)")
     return loops[0]
 
 

@@ -2,7 +2,7 @@
 
 Outside reference: JAX's own reverse-mode gradient (``jax.grad`` in float64) of
 the same traced loss; the vectorised central differences must agree with it to
-their stated accuracy, and with the Python loop of gradcheck._references.numerical, whose
+their stated accuracy, and with the Python loop of gradcheck._references.finite_difference, whose
 loss values differ from XLA's only by rounding. Networks are invented.
 """
 
@@ -16,11 +16,12 @@ import numpy as np
 import pytest
 
 import gradcheck
-from gradcheck._references.autodiff import trace
-from gradcheck._scale.batched import BATCH_BYTES, MAX_BATCH, BatchedRunner
-from gradcheck._references.numerical import central, richardson
-from gradcheck._scale.runners import Entries, central_by, entrywise_references, richardson_by
 from gradcheck._check.inputs import make_plan
+from gradcheck._references.autodiff import trace
+from gradcheck._references.finite_difference import central, central_by, richardson, richardson_by
+from gradcheck._scale.batched import BATCH_BYTES, MAX_BATCH, BatchedRunner
+from gradcheck._scale.perturbations import Entries
+from gradcheck._scale.runners import entrywise_references
 
 
 def mlp_loss(p, x, y, xp=np):
@@ -108,7 +109,7 @@ def test_chunks_bound_memory(sizes, expected):
 
 
 def test_directional_moves_are_not_batched():
-    from gradcheck._scale.runners import Move
+    from gradcheck._scale.perturbations import Move
 
     p, x, y = make()
     _, runner = runner_for(p, x, y)

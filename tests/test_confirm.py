@@ -12,8 +12,10 @@ import pytest
 
 import gradcheck
 from gradcheck._check.confirm import measure_noise, widen_for_noise
-from gradcheck._references.numerical import EPS64, Evaluator, central
 from gradcheck._check.inputs import make_plan
+from gradcheck._core.evaluator import Evaluator
+from gradcheck._core.precision import EPS64
+from gradcheck._references.finite_difference import central
 
 W = np.array([0.3, -1.2, 2.0, 0.7])
 

@@ -7,8 +7,10 @@ import pytest
 from scipy import differentiate
 
 import gradcheck
-from gradcheck._references.numerical import EPS64, Evaluator, central, complex_step, complex_usable, richardson, steps_for
+from gradcheck._core.evaluator import Evaluator
+from gradcheck._core.precision import EPS64, steps_for
 from gradcheck._core.tree import flatten
+from gradcheck._references.finite_difference import central, complex_step, complex_usable, richardson
 
 
 def squire_trapp(p, xp=np):

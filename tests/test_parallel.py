@@ -1,7 +1,7 @@
 """Tests for gradcheck._scale.runners (and the progress bar of gradcheck._scale.progress it drives).
 
 Outside references: the schemes routed through runners are compared bit for bit
-with gradcheck._references.numerical's own loops, and those with SciPy's
+with gradcheck._references.finite_difference's own loops, and those with SciPy's
 ``scipy.differentiate.derivative`` on a closed-form loss; the executors under test
 are the standard library's thread and process pools and a local Dask
 distributed cluster. Networks and values are invented for these tests. The
@@ -18,12 +18,19 @@ import numpy as np
 import pytest
 
 import gradcheck
-from gradcheck._core.errors import InputError
-from gradcheck._references.numerical import central, complex_step, richardson
-from gradcheck._scale.runners import (Entries, ExecutorRunner, Move, SerialRunner, _split, central_by, complex_by,
-                                 entrywise_references, raw_direction, richardson_by, unit_direction, worker_count)
 from gradcheck._check.inputs import make_plan
+from gradcheck._core.errors import InputError
+from gradcheck._references.finite_difference import (
+    central,
+    central_by,
+    complex_by,
+    complex_step,
+    richardson,
+    richardson_by,
+)
+from gradcheck._scale.perturbations import Entries, Move, raw_direction, unit_direction
 from gradcheck._scale.progress import ProgressBar, open_bar
+from gradcheck._scale.runners import SerialRunner, _split, entrywise_references, worker_count
 
 
 def mlp_loss(p, x, y):

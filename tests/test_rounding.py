@@ -10,8 +10,8 @@ import pytest
 
 import gradcheck
 from gradcheck._check.compare import judge
-from gradcheck._references.numerical import Estimate
 from gradcheck._core.tree import flatten
+from gradcheck._references.finite_difference import Estimate
 
 
 def _tanh_loss(p, x):

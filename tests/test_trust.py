@@ -383,7 +383,7 @@ def test_float32_rounding_in_saturated_units_is_measured_not_blamed(case):
 def test_a_loss_that_rounds_to_exactly_zero_is_not_blamed():
     # The loss log(1 + e^-77) rounds to exactly 0.0 and stays 0.0 at every perturbed point, while the backward's
     # s - y keeps gradients of 1e-36 to 1e-34 (the true ones). A loss of exactly 0 carries no rounding scale of
-    # its own; gradcheck takes values of order one (``_numerical.rounding_scale``), below whose rounding the
+    # its own; gradcheck takes values of order one (``_core.precision.rounding_scale``), below whose rounding the
     # references cannot tell 1e-34 from 0.
     net, params, x, y = _loss_exactly_zero()
     loss = numpy_route(net)

@@ -17,10 +17,10 @@ from .._check.inputs import Plan, make_plan
 from .._check.rounding import rounding_notes
 from .._check.run import read_claims, run_check
 from .._core.errors import BackpropMismatch, input_error
+from .._core.precision import EPS64
 from .._core.tree import LayerSpec
 from .._diagnose.ranking import merge_findings
 from .._references.choose import METHODS, check_methods, compute_references
-from .._references.numerical import EPS64
 from .._report.listeners import announce
 from .._report.results import Report, TensorResult, build_layers, nondeterministic_report
 from .entry import entry_point

@@ -33,13 +33,13 @@ from .._check.inputs import Plan, copy_data, make_plan
 from .._check.rounding import rounding_notes
 from .._check.run import Claims, Outcome, read_claims, run_check, standard_diagnosis
 from .._core.errors import InputError, describe, input_error
+from .._core.precision import EPS64
 from .._core.tree import _rebuild, _walk, flatten
 from .._diagnose.kinds import RankedFinding
 from .._diagnose.ranking import merge_findings
 from .._layers.stress import overlap_notes, resolution_notes, stabiliser_notes
 from .._references.autodiff import Traced, accepts_keyword
 from .._references.choose import check_methods
-from .._references.numerical import EPS64
 from .._report.listeners import announce
 from .._report.results import ReferenceSummary, Report, TensorResult, build_layers, nondeterministic_report
 from .entry import entry_point

@@ -24,10 +24,10 @@ from typing import Sequence
 import numpy as np
 
 from .._core.tree import Structure
-from .._references.numerical import Estimate
+from .._references.finite_difference import Estimate
 from .._report.results import ReferenceSummary, TensorResult
 
-__all__ = ["Judgement", "tolerance_for", "relative_error", "disagreement", "judge", "primary_of"]
+__all__ = ["Judgement", "tolerance_for", "relative_error", "disagreement", "judge"]
 
 FLOOR_FRACTION = {"float64": 1e-6, "float32": 1e-3}
 """Floor as a fraction of the largest reference entry, by the claimed gradient's dtype."""
@@ -62,11 +62,6 @@ def relative_error(claimed: np.ndarray, ref: np.ndarray, floor: np.ndarray | flo
         denom = np.maximum(np.maximum(np.abs(c), np.abs(r)), floor)
         err = np.abs(c - r) / denom
     return np.where(np.isfinite(c), err, np.inf)
-
-
-def primary_of(estimates: Sequence[Estimate]) -> Estimate:
-    """The most accurate estimate (smallest relative accuracy), first on ties."""
-    return min(estimates, key=lambda e: e.rtol)
 
 
 def disagreement(a: Estimate, b: Estimate, k: int) -> tuple[np.ndarray, float]:

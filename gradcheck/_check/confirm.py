@@ -16,15 +16,16 @@ from typing import Any
 
 import numpy as np
 
-from .._references.numerical import (
+from .._core.precision import EPS64, rounding_scale
+from .._references.finite_difference import (
     COMPLEX_STEP,
-    EPS64,
     Estimate,
+    central_along,
     complex_step,
     complex_usable,
     richardson,
-    rounding_scale,
 )
+from .._references.kinks import kink_explains
 from .compare import Judgement
 from .inputs import Plan
 
@@ -57,7 +58,7 @@ def _complex_is_analytic(plan: Plan, cev: Any, seed: int) -> tuple[bool, int]:
         v = rng.standard_normal(b.shape)
         v /= max(float(np.linalg.norm(v)), 1e-300)
         h = EPS64 ** (1 / 3) * max(float(np.max(np.abs(b), initial=0.0)), 1.0)
-        num = (ev.along(k, v, h) - ev.along(k, v, -h)) / (2 * h)
+        num = central_along(ev, k, v, h)
         cev.work[k][...] = cev.base[k] + 1j * COMPLEX_STEP * v.reshape(b.shape)
         try:
             exact = complex(cev()).imag / COMPLEX_STEP
@@ -144,19 +145,15 @@ def find_kinks(plan: Plan, judgement: Judgement, claimed: list[np.ndarray]) -> t
         ref, claim, flat_mask = judgement.primary.values[k].reshape(-1), claimed[k].reshape(-1), mask.reshape(-1)
         for i in failing:
             h = plan.loss_eps ** (1 / 3) * max(abs(base[i]), 1.0)
-            seconds = []
+            ups, downs = [], []
             for step in (h, h / 2):
                 work[i] = base[i] + step
-                up = ev()
+                ups.append(ev())
                 work[i] = base[i] - step
-                down = ev()
+                downs.append(ev())
                 work[i] = base[i]
-                seconds.append((up - 2 * plan.f0 + down) / step)
-            jump = seconds[1]
-            noise = 1e3 * plan.loss_eps * rounding_scale(plan.f0) / h
-            steady = abs(jump) > noise and abs(seconds[1]) > 0.75 * abs(seconds[0])
-            inside = abs(claim[i] - ref[i]) <= 0.5 * abs(jump) * (1 + 1e-6) + noise
-            flat_mask[i] = steady and inside
+            flat_mask[i] = kink_explains(plan.f0, ups, downs, (h, h / 2), abs(claim[i] - ref[i]), plan.loss_eps,
+                                         "steady")
         masks.append(mask)
     return masks, ev.count
 

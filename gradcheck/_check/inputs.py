@@ -15,8 +15,9 @@ from typing import Any, Callable, Sequence
 import numpy as np
 
 from .._core.errors import InputError, describe, input_error
+from .._core.evaluator import Evaluator
+from .._core.precision import EPS32, EPS64
 from .._core.tree import LayerSpec, Structure, _rebuild, _walk, flatten, flatten_like
-from .._references.numerical import EPS32, EPS64, Evaluator
 
 __all__ = ["Plan", "make_plan", "copy_data", "claimed_from"]
 

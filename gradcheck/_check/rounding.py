@@ -45,8 +45,8 @@ from typing import Any, Sequence
 
 import numpy as np
 
+from .._core.precision import EPS64
 from .._core.tree import _rebuild, _walk, flatten_like
-from .._references.numerical import EPS64
 from .compare import Judgement, judge
 from .inputs import Plan, copy_data
 

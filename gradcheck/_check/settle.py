@@ -16,7 +16,7 @@ from typing import Callable
 
 import numpy as np
 
-from .._references.numerical import Estimate
+from .._references.finite_difference import Estimate
 from .compare import Judgement, judge
 from .confirm import CONFIRM_PER_TENSOR, NOISE_POINTS, confirm_failing, find_kinks, measure_noise, widen_for_noise
 from .inputs import Plan

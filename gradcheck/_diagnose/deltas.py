@@ -23,9 +23,9 @@ from .._check.compare import Judgement
 from .._check.inputs import Plan, copy_data
 from .._check.run import Claims, run_check
 from .._core.errors import input_error
+from .._core.evaluator import Evaluator
 from .._core.tree import flatten, flatten_like
 from .._references.autodiff import Traced, accepts_keyword
-from .._references.numerical import Evaluator
 from .._report.results import Finding, TensorResult
 from .delta_factors import factor_findings
 from .kinds import EvidenceTier, RankedFinding

@@ -21,8 +21,10 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
+from .._core.precision import EPS64, ROUNDOFF_SAFETY, rounding_scale
 from .._core.tree import Structure
-from .numerical import EPS64, ROUNDOFF_SAFETY, Estimate, rounding_scale
+from .finite_difference import Estimate
+from .registry import accuracy
 
 __all__ = ["Traced", "accepts_keyword", "trace", "autodiff_estimate"]
 
@@ -133,14 +135,4 @@ def autodiff_estimate(traced: Traced, base: Sequence[np.ndarray], f0: float) -> 
     if not all(np.all(np.isfinite(v)) for v in values):
         return "autodiff returned NaN or Inf (a non-differentiable operation such as sqrt at 0)"
     atol = tuple(ROUNDOFF_SAFETY * EPS64 * rounding_scale(f0) / np.maximum(np.abs(b), 1.0) for b in base)
-    return Estimate("autodiff", values, atol, rtol=1e-12)
-
-
-def value_and_grad(traced: Traced, points: Sequence[np.ndarray]) -> tuple[float, list[np.ndarray]]:
-    """Loss value and gradient at another point (used by the update-step check)."""
-    jax = _jax()
-    import jax.numpy as jnp
-
-    with jax.enable_x64(True):
-        v, g = jax.value_and_grad(traced.fun)([jnp.asarray(p) for p in points])
-        return float(v), [np.asarray(x, dtype=np.float64) for x in g]
+    return Estimate("autodiff", values, atol, rtol=accuracy("autodiff"))

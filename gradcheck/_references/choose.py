@@ -15,12 +15,13 @@ import numpy as np
 
 from .._check.inputs import Plan
 from .._core.errors import input_error
+from .._core.precision import EPS64
 from .autodiff import Traced, autodiff_estimate, trace
-from .numerical import EPS64, Estimate, complex_usable
+from .finite_difference import Estimate, complex_usable
+from .registry import METHODS, accuracy
 
 __all__ = ["METHODS", "check_methods", "compute_references"]
 
-METHODS = ("autodiff", "complex", "richardson", "central")
 """Every reference method, most accurate first (the first one computed is the primary)."""
 
 
@@ -64,7 +65,8 @@ def compute_references(plan: Plan, methods: tuple[str, ...] | None, seed: int = 
             else:
                 traced = got
                 if eps > EPS64:
-                    est = dataclasses.replace(est, rtol=1e-5, atol=tuple(a * eps / EPS64 for a in est.atol))
+                    est = dataclasses.replace(est, rtol=accuracy("autodiff", eps),
+                                              atol=tuple(a * eps / EPS64 for a in est.atol))
                 estimates.append(est)
     if "complex" in wanted:
         cev = plan.evaluator(np.complex128)

@@ -5,7 +5,7 @@ central differences or Richardson extrapolation need are computed by one
 compiled, vectorised function (``jax.vmap`` over perturbations) per chunk,
 instead of one Python call per point. Every value is still a genuine
 evaluation of the loss at a perturbed point, so the result is a numerical
-reference with the same steps as the Python loop (``_numerical``); it differs
+reference with the same steps as the Python loop (``_references.finite_difference``); it differs
 from the loop's only by the rounding of the loss itself, since XLA may sum in
 another order than numpy.
 
@@ -24,8 +24,8 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
-from .._references.numerical import ROUNDOFF_SAFETY
-from .runners import Entries
+from .._core.precision import ROUNDOFF_SAFETY
+from .perturbations import Entries
 
 __all__ = ["BatchedRunner", "BATCH_BYTES", "MAX_BATCH"]
 
@@ -44,7 +44,7 @@ def _jax():
 
 
 class BatchedRunner:
-    """Evaluates :class:`~gradcheck._scale.runners.Entries` perturbations with a vectorised, compiled loss.
+    """Evaluates :class:`~gradcheck._scale.perturbations.Entries` perturbations with a vectorised, compiled loss.
 
     Args:
         traced: the loss as a JAX function of its leaves (``_autodiff.Traced``).

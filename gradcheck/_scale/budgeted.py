@@ -46,8 +46,10 @@ from .._check.compare import (
     tolerance_for,
 )
 from .._core.errors import input_error
+from .._core.precision import EPS64
 from .._references.autodiff import autodiff_estimate
-from .._references.numerical import EPS64, Estimate
+from .._references.finite_difference import Estimate
+from .._references.registry import accuracy
 from .._report.results import ReferenceSummary, TensorResult
 from . import directional
 from .directional import (
@@ -87,7 +89,7 @@ def check_within_budget(plan: Any, claimed: list, dtypes: list, traced: Any, bud
                           f"the first look at the loss, {'1 for autodiff, ' if traced is not None else ''}2 for one "
                           "directional test of each tensor)", f"budget={budget}",
                           f"Pass budget={plan.evaluations + need} or more, or leave it out for the default.")
-    central_like = Estimate("central", (), (), rtol=1e-6 if plan.loss_eps <= EPS64 else 1e-2)
+    central_like = Estimate("central", (), (), rtol=accuracy("central", plan.loss_eps))
     entry_tol = [tolerance if tolerance is not None else tolerance_for(d, central_like) for d in dtypes]
     rtols = [tolerance if tolerance is not None else t / DIRECTIONAL_MARGIN for t in entry_tol]
     runner = ExecutorRunner(plan, executor) if executor is not None else SerialRunner(plan)
@@ -102,7 +104,8 @@ def check_within_budget(plan: Any, claimed: list, dtypes: list, traced: Any, bud
                 unavailable["autodiff"] = got
             else:
                 ad = got if plan.loss_eps <= EPS64 else dataclasses.replace(
-                    got, rtol=1e-5, atol=tuple(a * plan.loss_eps / EPS64 for a in got.atol))
+                    got, rtol=accuracy("autodiff", plan.loss_eps),
+                    atol=tuple(a * plan.loss_eps / EPS64 for a in got.atol))
                 session.ref = ad.values
         else:
             unavailable["autodiff"] = ("the loss could not be traced by JAX, so central differences along random "
@@ -213,7 +216,7 @@ def _judgement(plan, ad, trusted, parts, unavailable, probes, scale) -> Judgemen
     else:
         summary = ReferenceSummary("directional", ("directional",) + located, {}, dict(unavailable),
                                    int(sum(int(np.sum(p.unreliable)) for p in parts)))
-        primary = Estimate("directional", values, atol, 1e-6 if plan.loss_eps <= EPS64 else 1e-2)
+        primary = Estimate("directional", values, atol, accuracy("central", plan.loss_eps))
     return Judgement(primary, tuple(p.result for p in parts), summary, tuple(p.unreliable for p in parts),
                      tuple(p.errors for p in parts), scale, tuple(p.floors for p in parts))
 

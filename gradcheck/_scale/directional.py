@@ -16,14 +16,10 @@ from typing import Any, Sequence
 import numpy as np
 
 from .._check.compare import relative_error
-from .._references.numerical import (
-    ROUNDOFF_SAFETY,
-    _roundoff,
-    rounding_scale,
-    steps_for,
-    typical_size,
-)
-from .runners import Entries, Move, raw_direction
+from .._core.precision import ROUNDOFF_SAFETY, rounding_scale, typical_size
+from .._references.finite_difference import central_entry
+from .._references.kinks import kink_explains
+from .perturbations import Move, raw_direction
 
 __all__ = ["Probe", "miss_probability", "detectable_norm", "MAX_DIRECTIONS", "MAX_LOCATED", "DETECTION"]
 
@@ -157,7 +153,8 @@ class _Session:
         on a smooth loss (to O(h^3)), so it halves exactly each time the step halves; across a kink it does
         not (inside the step it stays near the jump, outside it drops to nearly nothing). Measured at h,
         h/2 and h/4, a ratio of consecutive ones off 1/2 by more than 0.1, above the rounding floor, is a
-        kink (the test ``_confirm.find_kinks`` makes entry by entry); it explains the failure when the
+        kink (``_references.kinks``; ``find_kinks`` uses
+        its entry-by-entry criterion); it explains the failure when the
         claimed derivative is within the largest of them (a bound on the jump) of the measured one. A
         gross mistake (a sign, a factor of 2) still fails.
         """
@@ -165,11 +162,7 @@ class _Session:
                                       self.typical[p.k])
         steps = (h, h / 2, h / 4)
         f = self.runner([Move(p.k, p.key, p.lo, p.hi, sign * step) for step in steps for sign in (1.0, -1.0)])
-        f0 = self.plan.f0
-        second = [(f[2 * i] - 2 * f0 + f[2 * i + 1]) / step for i, step in enumerate(steps)]
-        noise = 1e3 * self.eps * rounding_scale(f0) / h
-        kink = abs(second[0]) > noise and any(abs(b / a - 0.5) > 0.1 for a, b in zip(second, second[1:]) if a)
-        return kink and abs(p.num - p.dot) <= max(abs(v) for v in second)
+        return kink_explains(self.plan.f0, f[0::2], f[1::2], steps, abs(p.num - p.dot), self.eps, "not_halving")
 
     def confirm(self, p: Probe) -> Probe:
         """A failing test measured again at half the step and extrapolated (Richardson): two evaluations.
@@ -186,11 +179,7 @@ class _Session:
 
     def entry(self, k: int, j: int) -> tuple[float, float]:
         """Central difference at flat entry ``j`` of tensor ``k`` (two evaluations): value and accuracy."""
-        flat = self.plan.base[k].reshape(-1)
-        h = float(steps_for(flat, 2, self.eps)[j])
-        up, down = flat[j] + h, flat[j] - h
-        fp, fm = self.runner([Entries(k, np.array([j]), np.array([up])), Entries(k, np.array([j]), np.array([down]))])
-        return float((fp - fm) / (up - down)), float(_roundoff(self.plan.f0, np.array([h]), self.eps)[0])
+        return central_entry(self.runner, self.plan, k, j, self.eps)
 
 
 @dataclass

@@ -1,11 +1,7 @@
 """Evaluating the loss at many perturbed points: in this process, or farmed out to an executor.
 
-Every difference scheme is written here as a list of *perturbations* and a rule combining the loss values:
-
-* :class:`Entries` sets entries of one tensor to given values, one evaluation per entry (central
-  differences, Richardson extrapolation, the complex step);
-* :class:`Move` moves a contiguous range of one tensor's entries along a random unit direction named by a
-  key (directional checks); the direction is drawn again wherever it is needed, never shipped.
+Every difference scheme is written as a list of *perturbations* (``perturbations.Entries`` and
+``perturbations.Move``) and a rule combining the loss values; a runner evaluates the list.
 
 One function, :func:`evaluate_chunk`, evaluates a chunk here or in a worker: it copies the base point, sets
 each perturbation, calls the loss and restores the saved value. Serial and parallel runs do the same
@@ -20,30 +16,18 @@ import math
 import os
 import pickle
 from concurrent.futures import Executor, ProcessPoolExecutor, as_completed
-from typing import Any, Callable, NamedTuple, Sequence, Union
+from typing import Any, Callable, Sequence
 
 import numpy as np
 
 from .._core.errors import InputError, input_error
-from .._references.numerical import (
-    COMPLEX_STEP,
-    EPS64,
-    ROUNDOFF_SAFETY,
-    Estimate,
-    Evaluator,
-    _roundoff,
-    central,
-    richardson,
-    rounding_scale,
-    steps_for,
-)
+from .._core.evaluator import Evaluator
+from .._references.finite_difference import Estimate, central_by, complex_by, richardson_by
+from .._references.registry import evaluations_per_entry
+from .perturbations import Block, Directions, Entries, Move, evaluate, size_of
 from .progress import open_bar
 
-__all__ = ["Entries", "Move", "raw_direction", "unit_direction", "evaluate_chunk", "SerialRunner",
-           "ExecutorRunner", "central_by", "richardson_by", "complex_by", "entrywise_references", "worker_count"]
-
-DIRECTION_BLOCK = 4096
-"""Entries per independently seeded block of a random direction (any sub-range is drawn without the rest)."""
+__all__ = ["evaluate_chunk", "SerialRunner", "ExecutorRunner", "entrywise_references", "worker_count"]
 
 CHUNKS_PER_WORKER = 4
 """Chunks per worker: enough to balance uneven workers and to move the progress bar, few enough that
@@ -63,91 +47,16 @@ numpy's (about 15 us), so vectorising saves nothing and compiling costs 0.2 to 1
 faster there. On an accelerator the copies run in parallel and the route pays."""
 
 
-class Entries(NamedTuple):
-    """Set entry ``index[j]`` (flat) of tensor ``k`` to ``value[j]``: one evaluation per j."""
-
-    k: int
-    index: np.ndarray
-    value: np.ndarray
-
-
-class Move(NamedTuple):
-    """Move flat entries ``lo:hi`` of tensor ``k`` by ``step`` times the unit direction ``key``: one evaluation."""
-
-    k: int
-    key: tuple
-    lo: int
-    hi: int
-    step: float
-
-
-Block = Union[Entries, Move]
-
-
-def _size(block: Block) -> int:
-    return 1 if isinstance(block, Move) else int(block.index.size)
-
-
-def raw_direction(key: tuple, lo: int, hi: int) -> np.ndarray:
-    """Entries ``lo:hi`` of the standard-normal vector named ``key``.
-
-    Block ``b`` (entries ``4096 b`` to ``4096 b + 4095``) always comes from the
-    generator seeded with ``(*key, b)``, so a sub-range is the same numbers
-    whichever range it is drawn as part of, and costs only its own blocks.
-
-    Example:
-        >>> whole = raw_direction((0, 1, 2), 0, 10000)
-        >>> bool(np.array_equal(raw_direction((0, 1, 2), 5000, 5003), whole[5000:5003]))
-        True
-    """
-    first, last = lo // DIRECTION_BLOCK, (hi - 1) // DIRECTION_BLOCK
-    parts = [np.random.default_rng([*key, b]).standard_normal(DIRECTION_BLOCK) for b in range(first, last + 1)]
-    start = lo - first * DIRECTION_BLOCK
-    return np.concatenate(parts)[start:start + (hi - lo)]
-
-
-def unit_direction(key: tuple, lo: int, hi: int) -> np.ndarray:
-    """:func:`raw_direction` scaled to unit length: uniform on the sphere of the range's entries."""
-    z = raw_direction(key, lo, hi)
-    return z / max(float(np.linalg.norm(z)), 1e-300)
-
-
 class _Point:
     """Private working copies of the base point that perturbations are applied to and undone from."""
 
     def __init__(self, loss: Callable, structure: Any, base: Sequence[np.ndarray], data: tuple, kwargs: dict,
                  dtype: Any):
         self.ev = Evaluator(loss, structure, base, data, kwargs, dtype=dtype)
-        self._direction: tuple = (None, None)
-
-    def _unit(self, key: tuple, lo: int, hi: int) -> np.ndarray:
-        if self._direction[0] != (key, lo, hi):  # the +h and -h moves of one test share a direction
-            self._direction = ((key, lo, hi), unit_direction(key, lo, hi))
-        return self._direction[1]
+        self.directions = Directions()
 
     def run(self, blocks: Sequence[Block], progress: Callable[[int], None] | None = None) -> np.ndarray:
-        ev, out = self.ev, []
-        for block in blocks:
-            if isinstance(block, Move):
-                seg = ev.work[block.k].reshape(-1)[block.lo:block.hi]
-                base = ev.base[block.k].reshape(-1)[block.lo:block.hi]
-                np.add(base, block.step * self._unit(block.key, block.lo, block.hi), out=seg)
-                try:
-                    out.append(ev())
-                finally:
-                    np.copyto(seg, base)
-            else:
-                flat = ev.work[block.k].reshape(-1)
-                for i, v in zip(block.index.tolist(), block.value.tolist()):
-                    x = flat[i]
-                    flat[i] = v
-                    try:
-                        out.append(ev())
-                    finally:
-                        flat[i] = x
-            if progress is not None:
-                progress(_size(block))
-        return np.array(out)
+        return evaluate(self.ev, blocks, progress, self.directions)
 
 
 def evaluate_chunk(payload: tuple, blocks: Sequence[Block]) -> np.ndarray:
@@ -175,13 +84,13 @@ def worker_count(executor: Executor) -> int:
 
 def _split(blocks: Sequence[Block], parts: int) -> list[list[Block]]:
     """Cut the blocks into at most ``parts`` chunks of nearly equal numbers of evaluations, in order."""
-    total = sum(_size(b) for b in blocks)
+    total = sum(size_of(b) for b in blocks)
     target = max(1, math.ceil(total / max(parts, 1)))
     chunks: list[list[Block]] = []
     current: list[Block] = []
     room = target
     for block in blocks:
-        while _size(block) > 0:
+        while size_of(block) > 0:
             if room == 0:
                 chunks.append(current)
                 current, room = [], target
@@ -251,7 +160,7 @@ class ExecutorRunner:
         self.count = 0
 
     def __call__(self, blocks: Sequence[Block]) -> np.ndarray:
-        total = sum(_size(b) for b in blocks)
+        total = sum(size_of(b) for b in blocks)
         if total == 0:
             return np.array([])
         # Several chunks per worker for balance, but no more chunks than quarter-lists: each chunk ships the params.
@@ -279,74 +188,6 @@ class ExecutorRunner:
         return np.concatenate(results)
 
 
-def _differences(run: Callable, plan: Any, eps: float, wanted: Sequence[np.ndarray | None] | None, order: int,
-                 fractions: Sequence[float]) -> tuple[list, list[np.ndarray], list[np.ndarray]]:
-    """Per tensor: its entries, steps, and the central differences at each fraction of the step.
-
-    The steps and the arithmetic are those of the loops in ``_numerical`` (the divisor is the step really
-    taken, ``(x + h) - (x - h)``), so a serial runner reproduces them bit for bit.
-    """
-    parts = []
-    for k, b in enumerate(plan.base):
-        flat = b.reshape(-1)
-        idx = np.arange(flat.size) if wanted is None or wanted[k] is None else np.asarray(wanted[k], np.int64)
-        parts.append((k, idx, flat[idx], steps_for(flat, order, eps)[idx]))
-    f = run([Entries(k, idx, x + sign * h * q) for k, idx, x, h in parts for q in fractions for sign in (1.0, -1.0)])
-    out, at = [], 0
-    for k, idx, x, h in parts:
-        ds = []
-        for q in fractions:  # h * q is exact: q is 1 or 1/2
-            hq, n = h * q, idx.size
-            ds.append((f[at:at + n] - f[at + n:at + 2 * n]) / ((x + hq) - (x - hq)))
-            at += 2 * n
-        out.append(ds)
-    values = [np.full(t.shape, np.nan) for t in plan.structure.tensors]
-    atol = [np.full(t.shape, np.inf) for t in plan.structure.tensors]
-    return [(k, idx, h, ds) for (k, idx, _, h), ds in zip(parts, out)], values, atol
-
-
-def central_by(run: Callable, plan: Any, eps: float = EPS64, wanted: Sequence[np.ndarray | None] | None = None) -> Estimate:
-    """Central differences through a runner: the same steps and arithmetic as ``_numerical.central``."""
-    parts, values, atol = _differences(run, plan, eps, wanted, 2, (1.0,))
-    for k, idx, h, (d,) in parts:
-        values[k].reshape(-1)[idx], atol[k].reshape(-1)[idx] = d, _roundoff(plan.f0, h, eps)
-    return Estimate("central", tuple(values), tuple(atol), rtol=1e-6 if eps <= EPS64 else 1e-2)
-
-
-def richardson_by(run: Callable, plan: Any, eps: float = EPS64,
-                  wanted: Sequence[np.ndarray | None] | None = None) -> Estimate:
-    """Richardson extrapolation through a runner: the same steps and arithmetic as ``_numerical.richardson``."""
-    parts, values, atol = _differences(run, plan, eps, wanted, 4, (1.0, 0.5))
-    for k, idx, h, (d1, d2) in parts:
-        values[k].reshape(-1)[idx] = (4.0 * d2 - d1) / 3.0
-        atol[k].reshape(-1)[idx] = 3.0 * _roundoff(plan.f0, h / 2, eps)
-    return Estimate("richardson", tuple(values), tuple(atol), rtol=1e-9 if eps <= EPS64 else 1e-3)
-
-
-def complex_by(run: Callable, plan: Any) -> Estimate:
-    """The complex step through a runner on complex128 copies: the arithmetic of ``_numerical.complex_step``."""
-    values = [np.full(t.shape, np.nan) for t in plan.structure.tensors]
-    atol = [np.full(t.shape, np.inf) for t in plan.structure.tensors]
-    blocks, parts = [], []
-    for k, b in enumerate(plan.base):
-        flat = b.reshape(-1)
-        scale = np.maximum(np.abs(flat), 1.0)
-        h = COMPLEX_STEP * scale
-        moved = np.empty(flat.size, dtype=np.complex128)
-        moved.real, moved.imag = flat, h
-        blocks.append(Entries(k, np.arange(flat.size), moved))
-        parts.append((k, h, scale))
-    f = run(blocks)
-    at = 0
-    for k, h, scale in parts:
-        n = h.size
-        values[k].reshape(-1)[:] = np.imag(f[at:at + n]) / h
-        atol[k].reshape(-1)[:] = ROUNDOFF_SAFETY * EPS64 * rounding_scale(plan.f0) / scale
-        at += n
-    return Estimate("complex", tuple(values), tuple(atol), rtol=1e-11)
-
-
-_COST = {"richardson": 4, "central": 2}
 
 
 def _vectorising_pays() -> bool:
@@ -364,13 +205,13 @@ def entrywise_references(plan: Any, methods: Sequence[str], eps: float, executor
     that JAX can trace is evaluated in vectorised chunks (``_batched``) when
     that pays (an accelerator, see :data:`BATCHED_ON_CPU`; enough evaluations to
     repay compiling) and the traced loss agrees with the loss itself at the base
-    point; otherwise the plain Python loop of ``_numerical`` runs. Returns the estimates (in ``methods`` order) and the
-    number of loss evaluations spent.
+    point; otherwise a serial runner evaluates them here. Returns the estimates (in ``methods`` order) and
+    the number of loss evaluations spent.
     """
-    methods = [m for m in methods if m in _COST]
+    methods = [m for m in methods if m in ("richardson", "central")]
     if not methods:
         return [], 0
-    total = sum(_COST[m] for m in methods) * plan.structure.size
+    total = sum(evaluations_per_entry(m) for m in methods) * plan.structure.size
     bar = open_bar(progress, total, "gradcheck: " + " and ".join(m + " differences" if m == "central" else m
                                                                    for m in methods))
     schemes = {"central": central_by, "richardson": richardson_by}
@@ -388,10 +229,9 @@ def entrywise_references(plan: Any, methods: Sequence[str], eps: float, executor
         if runner is not None:
             estimates = [schemes[m](runner, plan, eps) for m in methods]
             return estimates, spent + runner.count
-        ev = plan.evaluator()
-        serial = {"central": central, "richardson": richardson}
-        estimates = [serial[m](ev, plan.f0, eps=eps, progress=bar.callback) for m in methods]
-        return estimates, spent + ev.count
+        runner = SerialRunner(plan, progress=bar.callback)
+        estimates = [schemes[m](runner, plan, eps) for m in methods]
+        return estimates, spent + runner.count
     finally:
         bar.close()
 
