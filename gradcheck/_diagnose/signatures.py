@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Sequence
+from typing import TYPE_CHECKING, Any, Sequence
 
 import numpy as np
 
@@ -143,7 +143,7 @@ def mutant_findings(plan: Plan, traced: Traced, claimed: list[np.ndarray], judge
     from .._core.tree import _walk
     from .mutants import build_mutants, rank_mutants
 
-    def fun(tree):
+    def fun(tree: Any) -> Any:
         found: list = []
         _walk(tree, (), found)
         return traced.fun([leaf for _, leaf in found])

@@ -26,11 +26,15 @@ says what was measured, never what the layer "is".
 from __future__ import annotations
 
 import warnings
-from typing import Any, Callable, Sequence
+from typing import TYPE_CHECKING, Any, Callable, Sequence
 
 import numpy as np
 
 from .._core.errors import describe, input_error
+
+if TYPE_CHECKING:
+    from gradcheck._check.compare import Judgement
+    from gradcheck._core.tree import Structure
 
 __all__ = ["stress_inputs", "KINDS", "stabiliser_notes", "overlap_notes", "resolution_notes"]
 
@@ -312,7 +316,7 @@ def overlap_notes(run: Callable[[list], Any], args: list, names: Sequence[str], 
     return notes, calls
 
 
-def resolution_notes(judgement: Any, structure: Any) -> list[str]:
+def resolution_notes(judgement: Judgement, structure: Structure) -> list[str]:
     """Notes for tensors whose true gradient is zero, or below the check's floor, almost everywhere it is not zero.
 
     Where 0 < |reference| is under the relative-error floor (a saturated unit), an

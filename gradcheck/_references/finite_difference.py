@@ -12,7 +12,7 @@ the floor of the relative error and to decide when two references disagree by mo
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any, Callable, NamedTuple, Sequence
+from typing import TYPE_CHECKING, Callable, NamedTuple, Sequence
 
 import numpy as np
 
@@ -20,6 +20,10 @@ from .._core.evaluator import Evaluator
 from .._core.precision import EPS64, ROUNDOFF_SAFETY, rounding_scale, roundoff, steps_for
 from .._scale.perturbations import Block, Directions, Entries, evaluate
 from .registry import accuracy
+
+if TYPE_CHECKING:
+    from gradcheck._check.inputs import Plan
+    from gradcheck._core.tree import Structure
 
 __all__ = ["Estimate", "At", "on_evaluator", "central_by", "richardson_by", "complex_by", "central_entry",
            "central_along", "central", "richardson", "complex_step", "complex_usable", "COMPLEX_STEP"]
@@ -45,7 +49,7 @@ class Estimate:
 class At(NamedTuple):
     """The point a scheme differentiates at: the tensors, their float64 values, the loss there (a Plan fits)."""
 
-    structure: Any
+    structure: Structure
     base: Sequence[np.ndarray]
     f0: float
 
@@ -61,7 +65,7 @@ def _indices(size: int, wanted: Sequence[np.ndarray | None] | None, k: int) -> n
     return np.arange(size) if wanted is None or wanted[k] is None else np.asarray(wanted[k], np.int64)
 
 
-def _differences(run: Callable, plan: Any, eps: float, wanted: Sequence[np.ndarray | None] | None, order: int,
+def _differences(run: Callable, plan: Plan | At, eps: float, wanted: Sequence[np.ndarray | None] | None, order: int,
                  fractions: Sequence[float]) -> tuple[list, list[np.ndarray], list[np.ndarray]]:
     """Per tensor: its entries, steps, and the central differences at each fraction of the step.
 
@@ -75,7 +79,7 @@ def _differences(run: Callable, plan: Any, eps: float, wanted: Sequence[np.ndarr
         parts.append((k, idx, flat[idx], steps_for(flat, order, eps)[idx]))
     f = run([Entries(k, idx, x + sign * h * q) for k, idx, x, h in parts for q in fractions for sign in (1.0, -1.0)])
     out, at = [], 0
-    for k, idx, x, h in parts:
+    for _, idx, x, h in parts:
         ds = []
         for q in fractions:  # h * q is exact: q is 1 or 1/2
             hq, n = h * q, idx.size
@@ -87,7 +91,7 @@ def _differences(run: Callable, plan: Any, eps: float, wanted: Sequence[np.ndarr
     return [(k, idx, h, ds) for (k, idx, _, h), ds in zip(parts, out)], values, atol
 
 
-def central_by(run: Callable, plan: Any, eps: float = EPS64,
+def central_by(run: Callable, plan: Plan | At, eps: float = EPS64,
                wanted: Sequence[np.ndarray | None] | None = None) -> Estimate:
     """Central differences (f(x + h) - f(x - h)) / (2h) through a runner, two evaluations per entry.
 
@@ -106,7 +110,7 @@ def central_by(run: Callable, plan: Any, eps: float = EPS64,
     return Estimate("central", tuple(values), tuple(atol), rtol=accuracy("central", eps))
 
 
-def richardson_by(run: Callable, plan: Any, eps: float = EPS64,
+def richardson_by(run: Callable, plan: Plan | At, eps: float = EPS64,
                   wanted: Sequence[np.ndarray | None] | None = None) -> Estimate:
     """Richardson extrapolation of central differences through a runner: (4 D(h/2) - D(h)) / 3.
 
@@ -121,7 +125,7 @@ def richardson_by(run: Callable, plan: Any, eps: float = EPS64,
     return Estimate("richardson", tuple(values), tuple(atol), rtol=accuracy("richardson", eps))
 
 
-def complex_by(run: Callable, plan: Any, wanted: Sequence[np.ndarray | None] | None = None) -> Estimate:
+def complex_by(run: Callable, plan: Plan | At, wanted: Sequence[np.ndarray | None] | None = None) -> Estimate:
     """Complex-step derivative Im f(x + ih) / h through a runner on complex128 copies, one evaluation per entry.
 
     Squire & Trapp (1998): for a real-analytic loss, f(x + ih) = f(x) + ih f'(x)
@@ -155,7 +159,7 @@ COMPLEX_STEP = 1e-20
 O(h^2) truncation error lies far below rounding (Martins, Sturdza & Alonso 2003)."""
 
 
-def central_entry(run: Callable, plan: Any, k: int, j: int, eps: float = EPS64) -> tuple[float, float]:
+def central_entry(run: Callable, plan: Plan | At, k: int, j: int, eps: float = EPS64) -> tuple[float, float]:
     """Central difference at flat entry ``j`` of tensor ``k`` alone (two evaluations): value and accuracy."""
     wanted = [np.array([j]) if i == k else np.array([], dtype=np.int64) for i in range(len(plan.base))]
     est = central_by(run, plan, eps, wanted)

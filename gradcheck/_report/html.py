@@ -13,9 +13,12 @@ from __future__ import annotations
 
 import html
 import math
-from typing import Any, Sequence
+from typing import TYPE_CHECKING, Sequence
 
 import numpy as np
+
+if TYPE_CHECKING:
+    from gradcheck._report.results import Report
 
 __all__ = ["error_colour", "render_html", "plot_errors", "ANCHORS"]
 
@@ -83,7 +86,7 @@ def _svg(errors: np.ndarray, tolerance: float, cell: int = 10) -> str:
             f'class="gradcheck-map">{"".join(rects)}</svg>')
 
 
-def render_html(report: Any) -> str:
+def render_html(report: Report) -> str:
     """The report as one self-contained HTML fragment."""
     esc = html.escape
     colour = "#1b6f6a" if report.ok else "#d9481c"
@@ -114,7 +117,7 @@ def render_html(report: Any) -> str:
     return "".join(parts)
 
 
-def plot_errors(report: Any, tensors: Sequence[str] | None = None):
+def plot_errors(report: Report, tensors: Sequence[str] | None = None):
     """Draw one heat map per tensor on the tolerance-relative colour scale; returns the Figure."""
     try:
         import matplotlib.pyplot as plt
@@ -133,7 +136,7 @@ def plot_errors(report: Any, tensors: Sequence[str] | None = None):
     ).with_extremes(bad=(UNCHECKED[0] / 255, UNCHECKED[1] / 255, UNCHECKED[2] / 255))
     fig, axes = plt.subplots(1, max(len(chosen), 1), figsize=(3 * max(len(chosen), 1), 3), squeeze=False)
     for ax, t in zip(axes[0], chosen):
-        grid = _as_grid(t.errors)
+        grid = _as_grid(t.errors if t.errors is not None else np.full(t.shape, np.nan))
         with np.errstate(divide="ignore"):
             scaled = np.log10(np.maximum(grid, 1e-300) / t.tolerance)
         image = ax.imshow(np.ma.masked_invalid(np.clip(scaled, lo, hi)), cmap=cmap, vmin=lo, vmax=hi)

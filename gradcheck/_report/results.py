@@ -11,9 +11,12 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Any, Mapping, Sequence
+from typing import TYPE_CHECKING, Any, Mapping, Sequence
 
 import numpy as np
+
+if TYPE_CHECKING:
+    from gradcheck._core.tree import Structure
 
 __all__ = ["Finding", "TensorResult", "LayerResult", "ReferenceSummary", "Report", "build_layers"]
 
@@ -137,7 +140,7 @@ class ReferenceSummary:
                 "unavailable": dict(self.unavailable), "unreliable": int(self.unreliable)}
 
 
-def nondeterministic_report(structure: Any, where: str, detail: str, evaluations: int, why: str,
+def nondeterministic_report(structure: Structure, where: str, detail: str, evaluations: int, why: str,
                             title: str) -> Report:
     """The report of a check that could not start: the loss (or a layer's forward) is not deterministic."""
     nan = float("nan")

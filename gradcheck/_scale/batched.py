@@ -20,12 +20,16 @@ network is (a million-parameter network gets chunks of two).
 
 from __future__ import annotations
 
-from typing import Any, Callable, Sequence
+from typing import TYPE_CHECKING, Callable, Sequence
 
 import numpy as np
 
 from .._core.precision import ROUNDOFF_SAFETY
 from .perturbations import Entries
+
+if TYPE_CHECKING:
+    from gradcheck._check.inputs import Plan
+    from gradcheck._references.autodiff import Traced
 
 __all__ = ["BatchedRunner", "BATCH_BYTES", "MAX_BATCH"]
 
@@ -58,7 +62,7 @@ class BatchedRunner:
     are counted in ``count``.
     """
 
-    def __init__(self, traced: Any, plan: Any, batch: int | None = None,
+    def __init__(self, traced: Traced, plan: Plan, batch: int | None = None,
                  progress: Callable[[int], None] | None = None, batch_bytes: int = BATCH_BYTES):
         jax = _jax()
         import jax.numpy as jnp

@@ -32,7 +32,7 @@ from __future__ import annotations
 import dataclasses
 import math
 from dataclasses import dataclass
-from typing import Any, Sequence
+from typing import TYPE_CHECKING, Any, Sequence
 
 import numpy as np
 
@@ -66,9 +66,13 @@ from .directional import (
 from .progress import open_bar
 from .runners import ExecutorRunner, SerialRunner
 
+if TYPE_CHECKING:
+    from gradcheck._check.inputs import Plan
+    from gradcheck._references.autodiff import Traced
+
 __all__ = ["check_within_budget"]
 
-def check_within_budget(plan: Any, claimed: list, dtypes: list, traced: Any, budget: int | None = None,
+def check_within_budget(plan: Plan, claimed: list, dtypes: list, traced: Traced | None, budget: int | None = None,
                         executor: Any = None, progress: bool | None = None, seed: int = 0,
                         tolerance: float | None = None) -> tuple[Judgement, int, tuple[str, ...]]:
     """Check the claimed gradients spending at most ``budget`` loss evaluations in all (the plan's included).

@@ -11,7 +11,7 @@ from __future__ import annotations
 import dataclasses
 import math
 from dataclasses import dataclass, field
-from typing import Any, Sequence
+from typing import TYPE_CHECKING, Any, Sequence
 
 import numpy as np
 
@@ -20,6 +20,9 @@ from .._core.precision import ROUNDOFF_SAFETY, rounding_scale, typical_size
 from .._references.finite_difference import central_entry
 from .._references.kinks import kink_explains
 from .perturbations import Move, raw_direction
+
+if TYPE_CHECKING:
+    from gradcheck._check.inputs import Plan
 
 __all__ = ["Probe", "miss_probability", "detectable_norm", "MAX_DIRECTIONS", "MAX_LOCATED", "DETECTION"]
 
@@ -107,7 +110,7 @@ class Probe:
 class _Session:
     """One budgeted check: the runner, the budget left, the claimed values and autodiff's (when traced)."""
 
-    def __init__(self, plan: Any, claimed: Sequence[np.ndarray], runner: Any, allowance: int, rtols: list[float]):
+    def __init__(self, plan: Plan, claimed: Sequence[np.ndarray], runner: Any, allowance: int, rtols: list[float]):
         self.plan, self.claimed, self.runner, self.allowance, self.rtols = plan, claimed, runner, allowance, rtols
         self.ref: Sequence[np.ndarray] | None = None
         self.eps = plan.loss_eps

@@ -15,6 +15,7 @@ batched runners can all depend on it without depending on each other.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import Any, Callable, NamedTuple, Sequence, Union
 
 import numpy as np
@@ -26,8 +27,10 @@ DIRECTION_BLOCK = 4096
 """Entries per independently seeded block of a random direction (any sub-range is drawn without the rest)."""
 
 
-class Entries(NamedTuple):
-    """Set entry ``index[j]`` (flat) of tensor ``k`` to ``value[j]``: one evaluation per j."""
+@dataclass(frozen=True)
+class Entries:
+    """Set entry ``index[j]`` (flat) of tensor ``k`` to ``value[j]``: one evaluation per j. (A dataclass, not a
+    NamedTuple: a field called ``index`` would shadow ``tuple.index``.)"""
 
     k: int
     index: np.ndarray

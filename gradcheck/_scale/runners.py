@@ -16,7 +16,7 @@ import math
 import os
 import pickle
 from concurrent.futures import Executor, ProcessPoolExecutor, as_completed
-from typing import Any, Callable, Sequence
+from typing import TYPE_CHECKING, Any, Callable, Sequence
 
 import numpy as np
 
@@ -26,6 +26,11 @@ from .._references.finite_difference import Estimate, central_by, complex_by, ri
 from .._references.registry import evaluations_per_entry
 from .perturbations import Block, Directions, Entries, Move, evaluate, size_of
 from .progress import open_bar
+
+if TYPE_CHECKING:
+    from gradcheck._check.inputs import Plan
+    from gradcheck._core.tree import Structure
+    from gradcheck._references.autodiff import Traced
 
 __all__ = ["evaluate_chunk", "SerialRunner", "ExecutorRunner", "entrywise_references", "worker_count"]
 
@@ -50,7 +55,7 @@ faster there. On an accelerator the copies run in parallel and the route pays.""
 class _Point:
     """Private working copies of the base point that perturbations are applied to and undone from."""
 
-    def __init__(self, loss: Callable, structure: Any, base: Sequence[np.ndarray], data: tuple, kwargs: dict,
+    def __init__(self, loss: Callable, structure: Structure, base: Sequence[np.ndarray], data: tuple, kwargs: dict,
                  dtype: Any):
         self.ev = Evaluator(loss, structure, base, data, kwargs, dtype=dtype)
         self.directions = Directions()
@@ -121,7 +126,7 @@ def _not_sendable(exc: BaseException) -> InputError:
 class SerialRunner:
     """Evaluates perturbations one after another in this process."""
 
-    def __init__(self, plan: Any, dtype: Any = np.float64, progress: Callable[[int], None] | None = None):
+    def __init__(self, plan: Plan, dtype: Any = np.float64, progress: Callable[[int], None] | None = None):
         self.point = _Point(plan.loss, plan.structure, plan.base, plan.data, plan.kwargs, dtype)
         self.progress = progress
         self.count = 0
@@ -142,7 +147,7 @@ class ExecutorRunner:
     only ever see copies.
     """
 
-    def __init__(self, plan: Any, executor: Executor, dtype: Any = np.float64,
+    def __init__(self, plan: Plan, executor: Executor, dtype: Any = np.float64,
                  progress: Callable[[int], None] | None = None):
         if not isinstance(executor, Executor):
             raise input_error("executor", "a concurrent.futures.Executor", type(executor).__name__,
@@ -197,8 +202,8 @@ def _vectorising_pays() -> bool:
     return BATCHED_ON_CPU or jax.default_backend() != "cpu"
 
 
-def entrywise_references(plan: Any, methods: Sequence[str], eps: float, executor: Executor | None = None,
-                         traced: Any = None, progress: bool | None = None) -> tuple[list[Estimate], int]:
+def entrywise_references(plan: Plan, methods: Sequence[str], eps: float, executor: Executor | None = None,
+                         traced: Traced | None = None, progress: bool | None = None) -> tuple[list[Estimate], int]:
     """Richardson extrapolation and/or central differences for every entry, by the route this check allows.
 
     With an executor, the evaluations are farmed out to it. Without one, a loss
@@ -236,7 +241,7 @@ def entrywise_references(plan: Any, methods: Sequence[str], eps: float, executor
         bar.close()
 
 
-def complex_reference(plan: Any, executor: Executor | None, progress: bool | None) -> tuple[Estimate, int]:
+def complex_reference(plan: Plan, executor: Executor | None, progress: bool | None) -> tuple[Estimate, int]:
     """The complex step for every entry, farmed out to ``executor`` or run here with a progress bar."""
     bar = open_bar(progress, plan.structure.size, "gradcheck: complex step")
     try:
