@@ -49,7 +49,7 @@ def examine(loss: Callable, params: Any, *data: Any, grads: Any, deltas: Any = N
         *data: the inputs the loss takes after params (float data is promoted to float64).
         grads: the claimed dE/dparams, a pytree like params, or a callable ``grads(params, *data)``.
         deltas: claimed dE/d(probed value), a dict probe name -> array or a callable like ``grads``;
-            the loss must take a keyword ``probe`` (see ``_probes``).
+            the loss must take a keyword ``probe`` (see ``gradcheck._diagnose.deltas``).
         step: the user's update ``step(params, grads) -> new_params``; its effective learning rate
             is inferred per tensor and an ascent step is reported.
         layers: a mapping path -> layer name, or a callable, overriding the default grouping.

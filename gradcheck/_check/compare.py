@@ -119,7 +119,7 @@ def judge(structure: Structure, claimed: Sequence[np.ndarray], claimed_dtypes: S
         gradient_scale: overrides the largest reference entry used for the floor.
         kinks: per-tensor masks of entries found to sit on a kink (not judged).
         allowances: per-tensor absolute rounding measured for the user's own backward (see
-            ``_rounding``); an entry that differs by no more than its allowance holds.
+            ``gradcheck._check.rounding``); an entry that differs by no more than its allowance holds.
     """
     primary = estimates[0]
     others = list(estimates[1:])

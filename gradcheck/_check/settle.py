@@ -49,7 +49,7 @@ def settle(plan: Plan, claimed: list[np.ndarray], dtypes: list[np.dtype], grads:
            room: int | None) -> Settled:
     """Compare, then settle every failing entry before anyone is blamed.
 
-    In order: the measured rounding of a callable backward (``_rounding``: a float32 one run again in
+    In order: the measured rounding of a callable backward (``gradcheck._check.rounding``: a float32 one run again in
     float64, a float64 one at inputs nudged by one rounding unit; no loss evaluations), the
     measured rounding noise of the loss (``_confirm.measure_noise``: a loss that cancels large values
     rounds far above its last place, and its finite differences are only that accurate), a second

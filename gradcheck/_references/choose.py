@@ -3,7 +3,7 @@
 Autodiff (when the loss is traceable) plus central differences by default; the
 complex step and Richardson extrapolation on request. Where the numerical
 evaluations run (this process, an executor, a vectorised JAX call) is decided in
-``_parallel``; this module decides which references to compute.
+``gradcheck._scale.runners``; this module decides which references to compute.
 """
 
 from __future__ import annotations

@@ -14,15 +14,15 @@ Entry-by-entry central differences cost two evaluations per parameter; here the 
   is compared with it; the directional tests then check autodiff itself (a traced loss computing another
   function than the numpy one is caught). A JVP would equal the dot product with that gradient.
 
-The step along a direction is ``eps^(1/3) max(||x_S||, typical entry)``: ``_numerical.steps_for`` applied
+The step along a direction is ``eps^(1/3) max(||x_S||, typical entry)``: ``_core.precision.steps_for`` applied
 to the line through ``x`` along ``u``, on which ``x`` has length ``||x_S||``. (A step of ``sqrt(m)`` times
 the per-entry one moves each entry as far as an entry-by-entry check, but the next layer's input
 ``sqrt(fan-in)`` times further; measured on tanh networks of up to 1e6 weights, it made the truncation
 error about 100 times larger.) A test passes when ``|D - <claimed, u>| <= rtol * max(|D|, |<claimed, u>|,
 ||claimed_S|| / sqrt(m_S), noise / rtol)``: the third term is the typical size of ``<claimed, u>`` (a
 direction nearly orthogonal to the gradient is not judged against a tiny number), and
-``noise = ROUNDOFF_SAFETY eps |f| / h`` is the rounding floor ``_numerical`` gives central differences.
-``rtol`` is a tenth of the entry tolerance: 1e-6 for float64 gradients, the accuracy ``_numerical`` claims
+``noise = ROUNDOFF_SAFETY eps |f| / h`` is the rounding floor ``_core.precision.roundoff`` gives central differences.
+``rtol`` is a tenth of the entry tolerance: 1e-6 for float64 gradients, the accuracy the reference-methods registry states
 for central differences (measured disagreements with JAX's exact directional derivatives on tanh networks
 stayed below 5e-8).
 """

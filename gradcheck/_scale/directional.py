@@ -1,9 +1,9 @@
 """Directional tests and their localisation by group testing, for budgeted checks.
 
-The reasoning behind steps and tolerances is in the docstring of ``_budget``; this
+The reasoning behind steps and tolerances is in the docstring of ``gradcheck._scale.budgeted``; this
 module holds the machinery: a test along one direction (:class:`Probe`), the
 session that spends the budget, bisection of a failing tensor's entries, and the
-confirmation of the entries found. ``_budget`` assembles the report from them.
+confirmation of the entries found. ``gradcheck._scale.budgeted`` assembles the report from them.
 """
 
 from __future__ import annotations

@@ -207,7 +207,7 @@ def entrywise_references(plan: Plan, methods: Sequence[str], eps: float, executo
     """Richardson extrapolation and/or central differences for every entry, by the route this check allows.
 
     With an executor, the evaluations are farmed out to it. Without one, a loss
-    that JAX can trace is evaluated in vectorised chunks (``_batched``) when
+    that JAX can trace is evaluated in vectorised chunks (``gradcheck._scale.batched``) when
     that pays (an accelerator, see :data:`BATCHED_ON_CPU`; enough evaluations to
     repay compiling) and the traced loss agrees with the loss itself at the base
     point; otherwise a serial runner evaluates them here. Returns the estimates (in ``methods`` order) and
