@@ -21,9 +21,9 @@ the per-entry one moves each entry as far as an entry-by-entry check, but the ne
 error about 100 times larger.) A test passes when ``|D - <claimed, u>| <= rtol * max(|D|, |<claimed, u>|,
 ||claimed_S|| / sqrt(m_S), noise / rtol)``: the third term is the typical size of ``<claimed, u>`` (a
 direction nearly orthogonal to the gradient is not judged against a tiny number), and
-``noise = ROUNDOFF_SAFETY eps |f| / h`` is the rounding floor ``_core.precision.roundoff`` gives central differences.
-``rtol`` is a tenth of the entry tolerance: 1e-6 for float64 gradients, the accuracy the reference-methods registry states
-for central differences (measured disagreements with JAX's exact directional derivatives on tanh networks
+``noise = ROUNDOFF_SAFETY eps |f| / h`` is the rounding floor ``_core.precision.roundoff`` gives central
+differences. ``rtol`` is a tenth of the entry tolerance: 1e-6 for float64 gradients, the accuracy the
+reference-methods registry states for central differences (measured disagreements with JAX's exact directional derivatives on tanh networks
 stayed below 5e-8).
 """
 
