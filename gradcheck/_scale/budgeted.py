@@ -23,8 +23,8 @@ error about 100 times larger.) A test passes when ``|D - <claimed, u>| <= rtol *
 direction nearly orthogonal to the gradient is not judged against a tiny number), and
 ``noise = ROUNDOFF_SAFETY eps |f| / h`` is the rounding floor ``_core.precision.roundoff`` gives central
 differences. ``rtol`` is a tenth of the entry tolerance: 1e-6 for float64 gradients, the accuracy the
-reference-methods registry states for central differences (measured disagreements with JAX's exact directional derivatives on tanh networks
-stayed below 5e-8).
+reference-methods registry states for central differences (measured disagreements with JAX's exact
+directional derivatives on tanh networks stayed below 5e-8).
 """
 
 from __future__ import annotations
