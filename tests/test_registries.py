@@ -40,5 +40,6 @@ def test_every_kind_has_a_meaning_and_only_the_unreliable_reference_blames_nobod
 
 
 def test_the_public_surface_is_exactly_all():
-    public = {name for name in vars(gradcheck) if not name.startswith("_")} - {"strategies"}
+    # names that are not identifiers ('@py_builtins') are pytest's assertion rewriting of the installed plugin
+    public = {name for name in vars(gradcheck) if name.isidentifier() and not name.startswith("_")} - {"strategies"}
     assert public == set(gradcheck.__all__)
